@@ -1,0 +1,207 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"net"
+	"net/http"
+	"os"
+	"strconv"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"go.uber.org/zap"
+	"go.uber.org/zap/zapcore"
+
+	"github.com/plumb-forecast/plumb/conformal"
+	"github.com/plumb-forecast/plumb/model"
+	"github.com/plumb-forecast/plumb/stream"
+	"github.com/plumb-forecast/plumb/worker"
+)
+
+const runHelp = `plumb run: a forecasting worker.
+
+It subscribes to the input subjects (plumb.in.weather.<site>,
+plumb.in.meter.<site>), keeps one actor per site of the registry, and
+publishes a quantile bundle (plumb.out.quantiles.<site>, Arrow IPC) after
+every input, coverage alarms (plumb.out.alarms.<site>, JSON) and rejected
+inputs (plumb.out.rejects, JSON).
+
+Without --nats it starts an embedded NATS server with JetStream, listening on
+--listen, so that other processes (plumb replay, plumb tail, your own
+producers and bots) can connect to it.
+
+Examples:
+  plumb run --sites ../shared/data/gefcom2012-wind/sites.json
+  plumb run --sites sites.json --nats nats://nats-1:4222,nats://nats-2:4222 --creds worker.creds
+  plumb run --sites sites.json --levels percentiles --calibrator none
+`
+
+// workerFlags are the forecasting settings shared by run and demo.
+type workerFlags struct {
+	levels     string
+	horizon    time.Duration
+	calibrator string
+	gamma      float64
+	window     int
+	tolerance  float64
+	shards     int
+}
+
+func (w *workerFlags) register(fs *flag.FlagSet) {
+	fs.StringVar(&w.levels, "levels", "default", "quantile `levels`: 'default' (0.05..0.95 by 0.05), 'percentiles' (0.01..0.99) or a list such as 0.1,0.5,0.9")
+	fs.DurationVar(&w.horizon, "horizon", 0, "how far ahead a bundle reaches (0: to the end of the next UTC day, at least 36h)")
+	fs.StringVar(&w.calibrator, "calibrator", "aci", "online calibrator per lead bucket and level: aci (adaptive conformal inference) or none")
+	fs.Float64Var(&w.gamma, "gamma", 0.005, "step size of the aci calibrator")
+	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which live coverage is judged")
+	fs.Float64Var(&w.tolerance, "alarm-tolerance", 0.05, "raise a coverage alarm when live coverage is further than this from the level (and the Kupiec test rejects at 1 %)")
+	fs.IntVar(&w.shards, "shards", 2, "goroutines the site actors are spread over")
+}
+
+func (w *workerFlags) config() (worker.Config, error) {
+	levels, err := model.ParseLevels(w.levels)
+	if err != nil {
+		return worker.Config{}, err
+	}
+	if w.horizon < 0 {
+		return worker.Config{}, fmt.Errorf("--horizon %s is negative", w.horizon)
+	}
+	if w.gamma <= 0 || w.gamma >= 1 {
+		return worker.Config{}, fmt.Errorf("--gamma %v must lie in (0, 1)", w.gamma)
+	}
+	cfg := worker.Config{
+		Levels:         levels,
+		HorizonMinutes: int(w.horizon / time.Minute),
+		CoverageWindow: w.window,
+		Calibrator:     conformal.Options{Method: w.calibrator, Gamma: w.gamma},
+		Alarm:          conformal.AlarmOptions{Tolerance: w.tolerance},
+	}
+	if _, err := conformal.New(0.5, cfg.Calibrator); err != nil {
+		return worker.Config{}, err
+	}
+	return cfg, nil
+}
+
+func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := newFlags("run", runHelp, stderr)
+	var (
+		conn       connFlags
+		wf         workerFlags
+		sitesPath  = fs.String("sites", "", "site registry: a JSON array of sites (`file`, required)")
+		listen     = fs.String("listen", "127.0.0.1:4222", "embedded server's `address` (ignored with --nats); port 0 picks a free one")
+		store      = fs.String("store", "", "embedded server's JetStream `folder` (default: a temporary folder removed on exit)")
+		metrics    = fs.String("metrics", "127.0.0.1:9464", "serve Prometheus metrics on this `address` ('' to turn off)")
+		logFormat  = fs.String("log-format", "console", "log format: console or json")
+		logLevel   = fs.String("log-level", "info", "log level: debug, info, warn, error")
+		maxPayload = fs.Int("max-input-bytes", 1<<20, "largest input message accepted, in bytes")
+	)
+	conn.register(fs, "", "NATS server `URL`s, comma-separated (default: start an embedded server)")
+	wf.register(fs)
+	if err := parse(fs, args); err != nil {
+		return err
+	}
+	if *sitesPath == "" {
+		fmt.Fprintln(stderr, "plumb run: --sites is required")
+		fs.Usage()
+		return errUsage
+	}
+	log, err := newLogger(*logFormat, *logLevel, zapcore.Lock(zapcore.AddSync(stderr)))
+	if err != nil {
+		return err
+	}
+	defer log.Sync()
+	sites, err := model.LoadSites(*sitesPath)
+	if err != nil {
+		return err
+	}
+	cfg, err := wf.config()
+	if err != nil {
+		return err
+	}
+
+	if conn.o.URL == "" {
+		host, portStr, err := net.SplitHostPort(*listen)
+		if err != nil {
+			return fmt.Errorf("--listen %q: %w", *listen, err)
+		}
+		port, err := strconv.Atoi(portStr)
+		if err != nil {
+			return fmt.Errorf("--listen %q: bad port", *listen)
+		}
+		if port == 0 {
+			port = -1
+		}
+		emb, err := stream.StartEmbedded(stream.EmbeddedOptions{Host: host, Port: port, StoreDir: *store})
+		if err != nil {
+			return err
+		}
+		defer emb.Shutdown()
+		conn.o.URL = emb.URL()
+		log.Info("embedded NATS server with JetStream listening", zap.String("url", emb.URL()))
+		fmt.Fprintf(stdout, "embedded NATS server listening on %s\n", emb.URL())
+	}
+	nc, err := conn.connect("plumb-worker", log)
+	if err != nil {
+		return err
+	}
+	defer nc.Close()
+
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	m := worker.NewMetrics(reg)
+	pool, err := worker.NewPool(sites, cfg, worker.NewNATSOutput(nc), worker.PoolOptions{
+		Shards:  wf.shards,
+		Decoder: stream.Decoder{MaxBytes: *maxPayload},
+		Logger:  log,
+		Metrics: m,
+	})
+	if err != nil {
+		return err
+	}
+	if *metrics != "" {
+		stop, addr, err := serveMetrics(*metrics, reg)
+		if err != nil {
+			log.Warn("metrics endpoint not started", zap.Error(err))
+		} else {
+			defer stop()
+			log.Info("metrics", zap.String("url", "http://"+addr+"/metrics"))
+		}
+	}
+	ready := make(chan struct{})
+	go func() {
+		<-ready
+		log.Info("worker ready", zap.Int("sites", len(sites)), zap.String("nats", nc.ConnectedUrlRedacted()),
+			zap.Int("levels", len(cfg.Levels)), zap.String("calibrator", wf.calibrator))
+		fmt.Fprintf(stdout, "worker ready: %d sites; inputs on plumb.in.{weather,meter}.<site>; try: plumb tail --nats %s\n",
+			len(sites), nc.ConnectedUrlRedacted())
+	}()
+	err = worker.Serve(ctx, nc, pool, ready)
+	log.Info("worker stopped")
+	return err
+}
+
+// serveMetrics serves reg on addr until stop is called.
+func serveMetrics(addr string, reg *prometheus.Registry) (stop func(), bound string, err error) {
+	ln, err := net.Listen("tcp", addr)
+	if err != nil {
+		return nil, "", fmt.Errorf("metrics: %w", err)
+	}
+	mux := http.NewServeMux()
+	mux.Handle("/metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{Registry: reg}))
+	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
+	go func() {
+		if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
+			fmt.Fprintln(os.Stderr, "metrics:", err)
+		}
+	}()
+	return func() {
+		ctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)
+		defer cancel()
+		srv.Shutdown(ctx)
+	}, ln.Addr().String(), nil
+}

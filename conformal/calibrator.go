@@ -1,0 +1,41 @@
+// Package conformal keeps a site's live quantiles calibrated: online
+// calibrators that learn from delayed outcomes, the coverage monitor, the
+// coverage tests and the alarm state machine.
+//
+// One calibrator serves one (site, lead bucket, level) and is updated only
+// when an outcome of a forecast it adjusted settles, which for a lead time h
+// is h later than the forecast: the delayed-feedback setting of METHODS.md
+// section 4. Calibrators are not safe for concurrent use; the site actor
+// that owns them serialises access.
+package conformal
+
+// Calibrator adjusts one level of a forecaster's raw quantiles so that the
+// share of outcomes at or below the issued quantile tracks the target level.
+//
+// Every implementation must pass the conformance suite in
+// conformal/conformaltest.
+type Calibrator interface {
+	// Name identifies the method ("aci", "none", ...).
+	Name() string
+	// Adjust returns the level at which to ask the forecaster for a quantile
+	// and an offset in MW to add to its answer. A level at or below 0 asks
+	// for -Inf, at or above 1 for +Inf.
+	Adjust() (level, offset float64)
+	// Update feeds one settled outcome of a forecast this calibrator adjusted.
+	Update(o Outcome)
+}
+
+// Outcome is one settled forecast of one level.
+type Outcome struct {
+	// Y is the observed mean power (MW).
+	Y float64
+	// Issued is the calibrated quantile that was issued for the level (after
+	// the offset, before sorting and clipping). Y <= Issued is a hit.
+	Issued float64
+	// PIT is the raw forecast's cumulative probability at Y (0..1),
+	// interpolated on its grid of levels; NaN when unknown.
+	PIT float64
+}
+
+// Hit reports whether the outcome lies at or below the issued quantile.
+func (o Outcome) Hit() bool { return o.Y <= o.Issued }

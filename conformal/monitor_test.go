@@ -1,0 +1,169 @@
+package conformal
+
+import (
+	"bytes"
+	"errors"
+	"math"
+	"math/rand/v2"
+	"testing"
+	"time"
+)
+
+func TestMonitorObserve(t *testing.T) {
+	m, err := NewMonitor(0.9, MonitorOptions{Window: 4, HalfLife: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	outcomes := []Outcome{
+		{Y: 1, Issued: 2, PIT: 0.5},            // hit, raw hit
+		{Y: 3, Issued: 2, PIT: 0.95},           // miss, raw miss
+		{Y: 1, Issued: 1, PIT: 0.9},            // hit (on the quantile), raw hit (on the level)
+		{Y: 1, Issued: 2, PIT: math.NaN()},     // hit, raw unknown
+		{Y: math.NaN(), Issued: 2, PIT: 0.1},   // ignored
+		{Y: 1, Issued: math.NaN(), PIT: 0.1},   // ignored
+		{Y: 0, Issued: 0.5, PIT: 0.99},         // hit, raw miss
+		{Y: 0, Issued: math.Inf(-1), PIT: 0.2}, // miss (level <= 0 issued -Inf), raw hit
+	}
+	for _, o := range outcomes {
+		m.Observe(o)
+	}
+	// Calibrated: hit miss hit hit hit miss -> the last 4: hit hit hit miss.
+	if m.Calibrated.Count() != 4 || m.Calibrated.Hits() != 3 {
+		t.Errorf("calibrated window %d/%d, want 3/4", m.Calibrated.Hits(), m.Calibrated.Count())
+	}
+	// Raw: hit miss hit miss hit -> the last 4: miss hit miss hit.
+	if m.Raw.Count() != 4 || m.Raw.Hits() != 2 {
+		t.Errorf("raw window %d/%d, want 2/4", m.Raw.Hits(), m.Raw.Count())
+	}
+	ew := NewEWCoverage(2)
+	for _, h := range []bool{true, false, true, true, true, false} {
+		ew.Add(h)
+	}
+	if *m.CalibratedEW != *ew {
+		t.Errorf("calibrated EW coverage %v, want %v", m.CalibratedEW.Coverage(), ew.Coverage())
+	}
+	rawEW := NewEWCoverage(2)
+	for _, h := range []bool{true, false, true, false, true} {
+		rawEW.Add(h)
+	}
+	if *m.RawEW != *rawEW {
+		t.Errorf("raw EW coverage %v, want %v", m.RawEW.Coverage(), rawEW.Coverage())
+	}
+}
+
+func TestMonitorAlarmAndEvent(t *testing.T) {
+	m, err := NewMonitor(0.5, MonitorOptions{Window: 200, Alarm: AlarmOptions{MinSamples: 50}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	at := time.Date(2024, 6, 1, 12, 0, 0, 0, time.UTC)
+	for i := range 200 {
+		m.Observe(Outcome{Y: float64(i % 4), Issued: 0.5, PIT: 0.5}) // a quarter hits
+		if changed, raised := m.Check(); changed {
+			if !raised {
+				t.Fatalf("outcome %d: the alarm cleared", i)
+			}
+			e := m.Event("demo-pv-02", "0h-1h", at)
+			if e.Level != 0.5 || e.Target != 0.5 || e.LeadBucket != "0h-1h" || e.State != StateRaised || e.Window != i+1 {
+				t.Errorf("event %+v", e)
+			}
+			return
+		}
+	}
+	t.Error("a quarter coverage on a 0.5 quantile never raised the alarm")
+}
+
+func TestNewMonitorErrors(t *testing.T) {
+	cases := []struct {
+		name  string
+		level float64
+		opt   MonitorOptions
+	}{
+		{"level 1", 1, MonitorOptions{}},
+		{"negative window", 0.5, MonitorOptions{Window: -1}},
+		{"negative half-life", 0.5, MonitorOptions{HalfLife: -3}},
+		{"bad alarm", 0.5, MonitorOptions{Alarm: AlarmOptions{PValue: 2}}},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			if _, err := NewMonitor(c.level, c.opt); err == nil {
+				t.Error("NewMonitor accepted bad input")
+			}
+		})
+	}
+	m, err := NewMonitor(0.5, MonitorOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if m.Calibrated.Size() != 672 || m.Raw.Size() != 672 || !near(m.CalibratedEW.HalfLife(), 96, 1e-9) {
+		t.Errorf("defaults: window %d, half-life %v", m.Calibrated.Size(), m.CalibratedEW.HalfLife())
+	}
+}
+
+func TestMonitorStateRoundTrip(t *testing.T) {
+	opt := MonitorOptions{Window: 100, HalfLife: 10, Alarm: AlarmOptions{MinSamples: 20}}
+	m, _ := NewMonitor(0.8, opt)
+	rng := rand.New(rand.NewPCG(9, 9))
+	feed := func(m *Monitor, n int, r *rand.Rand) (changes int) {
+		for range n {
+			y := r.NormFloat64()
+			m.Observe(Outcome{Y: y, Issued: 0.3, PIT: r.Float64()})
+			if changed, _ := m.Check(); changed {
+				changes++
+			}
+		}
+		return changes
+	}
+	feed(m, 150, rng)
+	b, err := m.MarshalBinary()
+	if err != nil {
+		t.Fatal(err)
+	}
+	r, _ := NewMonitor(0.3, MonitorOptions{Alarm: AlarmOptions{MinSamples: 20}})
+	if err := r.UnmarshalBinary(b); err != nil {
+		t.Fatal(err)
+	}
+	again, _ := r.MarshalBinary()
+	if !bytes.Equal(again, b) {
+		t.Fatal("the restored monitor encodes differently")
+	}
+	seed := rng.Uint64()
+	c1 := feed(m, 500, rand.New(rand.NewPCG(seed, 1)))
+	c2 := feed(r, 500, rand.New(rand.NewPCG(seed, 1)))
+	b1, _ := m.MarshalBinary()
+	b2, _ := r.MarshalBinary()
+	if c1 != c2 || !bytes.Equal(b1, b2) {
+		t.Errorf("after the same 500 outcomes: %d and %d alarm changes, states equal %v", c1, c2, bytes.Equal(b1, b2))
+	}
+
+	bad := [][]byte{nil, {2}, b[:5], b[:len(b)-1], append(bytes.Clone(b), 0)}
+	for _, d := range bad {
+		if err := r.UnmarshalBinary(d); !errors.Is(err, ErrState) {
+			t.Errorf("UnmarshalBinary of %d bytes = %v, want ErrState", len(d), err)
+		}
+	}
+}
+
+// FuzzMonitorUnmarshal: the monitor decoder must not panic, and a state it
+// accepts must encode back to the same bytes.
+func FuzzMonitorUnmarshal(f *testing.F) {
+	m, _ := NewMonitor(0.9, MonitorOptions{Window: 10})
+	for i := range 15 {
+		m.Observe(Outcome{Y: float64(i % 3), Issued: 1, PIT: 0.5})
+	}
+	good, _ := m.MarshalBinary()
+	f.Add(good)
+	f.Add([]byte{1, 0, 0})
+	f.Fuzz(func(t *testing.T, data []byte) {
+		var m Monitor
+		if m.UnmarshalBinary(data) != nil {
+			return
+		}
+		again, _ := m.MarshalBinary()
+		if !bytes.Equal(again, data) {
+			t.Errorf("accepted % x but encodes it as % x", data, again)
+		}
+		m.Observe(Outcome{Y: 0, Issued: 1, PIT: 0.5})
+		m.Check()
+	})
+}

@@ -1,0 +1,248 @@
+package worker
+
+import (
+	"bytes"
+	"errors"
+	"math"
+	"math/rand/v2"
+	"testing"
+	"time"
+
+	"github.com/plumb-forecast/plumb/model"
+	"github.com/plumb-forecast/plumb/model/solar"
+	"github.com/plumb-forecast/plumb/stream"
+)
+
+var t0 = time.Date(2026, 5, 4, 0, 0, 0, 0, time.UTC)
+
+func ptr(v float64) *float64 { return &v }
+
+// testSites are invented sites for tests.
+func testSites() []model.Site {
+	return []model.Site{
+		{ID: "pv-test", Kind: model.KindPV, CapacityMW: 10, Lat: ptr(44), Lon: ptr(-30)},
+		{ID: "wind-test", Kind: model.KindWind, CapacityMW: 20},
+	}
+}
+
+// feed is a small synthetic input sequence: 6-hourly weather runs (hourly
+// rows, 48 h ahead) and 15-minute readings whose output follows the
+// forecast driver with noise. It is invented test data, seeded.
+type feed struct {
+	runs     []model.WeatherRun
+	readings []model.Reading
+}
+
+func makeFeed(site model.Site, days int, seed uint64) feed {
+	rng := rand.New(rand.NewPCG(seed, 7))
+	var f feed
+	truth := func(t time.Time) float64 { // per-unit driver truth
+		h := float64(t.Hour()) + float64(t.Minute())/60
+		switch site.Kind {
+		case model.KindPV:
+			z, _ := solar.Position(t, *site.Lat, *site.Lon)
+			e := 90 - z
+			return math.Max(0, math.Sin(e*math.Pi/180)) * (0.6 + 0.4*math.Sin(float64(t.YearDay())+h/7))
+		default:
+			return 0.5 + 0.4*math.Sin(float64(t.Unix())/40000)
+		}
+	}
+	for d := 0; d < days*4; d++ {
+		iss := t0.Add(time.Duration(d) * 6 * time.Hour)
+		run := model.WeatherRun{Site: site.ID, IssuedAt: iss}
+		if site.Kind == model.KindPV {
+			run.Vars = []string{"ghi_wm2", "temp_c"}
+		} else {
+			run.Vars = []string{"temp_c", "wind_ms"}
+		}
+		for h := 0; h < 48; h++ {
+			vs := iss.Add(time.Duration(h) * time.Hour)
+			v := truth(vs.Add(30*time.Minute)) * (1 + 0.05*rng.NormFloat64())
+			row := model.WeatherRow{ValidStart: vs, ValidMinutes: 60}
+			if site.Kind == model.KindPV {
+				row.Values = []float64{math.Max(0, 1000*v), 12}
+			} else {
+				row.Values = []float64{8, math.Max(0, 15*v)}
+			}
+			run.Rows = append(run.Rows, row)
+		}
+		f.runs = append(f.runs, run)
+	}
+	for i := 0; i < days*96; i++ {
+		s := t0.Add(time.Duration(i) * 15 * time.Minute)
+		p := site.CapacityMW * truth(s.Add(7*time.Minute)) * (1 + 0.1*rng.NormFloat64())
+		f.readings = append(f.readings, model.Reading{
+			Site: site.ID, IntervalStart: s, IntervalMinutes: 15,
+			PowerMW: math.Max(0, math.Min(site.CapacityMW, p)), Availability: 1,
+		})
+	}
+	return f
+}
+
+// play applies a feed to an actor in event-time order and returns the
+// encoded bundles.
+func play(t *testing.T, a *Actor, f feed) [][]byte {
+	t.Helper()
+	enc := stream.NewBundleEncoder()
+	var out [][]byte
+	ri := 0
+	for _, r := range f.readings {
+		for ri < len(f.runs) && !f.runs[ri].IssuedAt.After(r.End()) {
+			if err := a.Weather(&f.runs[ri]); err != nil {
+				t.Fatalf("weather run %s: %v", f.runs[ri].IssuedAt, err)
+			}
+			ri++
+		}
+		if err := a.Meter(&r); err != nil {
+			t.Fatalf("reading %s: %v", r.IntervalStart, err)
+		}
+		b := a.Refresh()
+		var buf bytes.Buffer
+		if err := enc.Encode(&buf, b); err != nil {
+			t.Fatal(err)
+		}
+		out = append(out, buf.Bytes())
+	}
+	return out
+}
+
+// sunBelow reports whether the sun is more than deg degrees below the horizon.
+func sunBelow(t time.Time, lat, lon, deg float64) bool {
+	z, _ := solar.Position(t, lat, lon)
+	return z > 90+deg
+}
+
+func newTestActor(t *testing.T, s model.Site) *Actor {
+	t.Helper()
+	a, err := NewActor(s, Config{}.WithDefaults())
+	if err != nil {
+		t.Fatal(err)
+	}
+	return a
+}
+
+// TestActorDeterministic: the same inputs in the same order give the same
+// bundles, byte for byte (DESIGN.md, "One code path, event time").
+func TestActorDeterministic(t *testing.T) {
+	for _, s := range testSites() {
+		f := makeFeed(s, 5, 1)
+		b1 := play(t, newTestActor(t, s), f)
+		b2 := play(t, newTestActor(t, s), f)
+		if len(b1) != len(b2) || len(b1) == 0 {
+			t.Fatalf("%s: %d and %d bundles", s.ID, len(b1), len(b2))
+		}
+		for i := range b1 {
+			if !bytes.Equal(b1[i], b2[i]) {
+				t.Fatalf("%s: bundle %d differs between two runs", s.ID, i)
+			}
+		}
+	}
+}
+
+// TestActorBundleInvariants checks each bundle: monotone quantiles within
+// [0, available capacity], zero at night for PV, steps from now to at least
+// 36 h with consistent leads.
+func TestActorBundleInvariants(t *testing.T) {
+	for _, s := range testSites() {
+		a := newTestActor(t, s)
+		f := makeFeed(s, 4, 2)
+		ri := 0
+		nights := 0
+		for k, r := range f.readings {
+			for ri < len(f.runs) && !f.runs[ri].IssuedAt.After(r.End()) {
+				if err := a.Weather(&f.runs[ri]); err != nil {
+					t.Fatal(err)
+				}
+				ri++
+			}
+			if err := a.Meter(&r); err != nil {
+				t.Fatal(err)
+			}
+			b := a.Refresh()
+			if !b.IssuedAt.Equal(r.End()) {
+				t.Fatalf("issued %s, want the reading's end %s", b.IssuedAt, r.End())
+			}
+			if !b.Steps[0].ValidStart.Equal(b.IssuedAt) || b.Steps[0].LeadMinutes != 0 {
+				t.Fatalf("first step %+v, want lead 0 at %s", b.Steps[0], b.IssuedAt)
+			}
+			last := b.Steps[len(b.Steps)-1]
+			if end := last.ValidStart.Add(15 * time.Minute); end.Sub(b.IssuedAt) < 36*time.Hour {
+				t.Fatalf("bundle reaches %s, less than 36 h after %s", end, b.IssuedAt)
+			}
+			for i, st := range b.Steps {
+				if want := int(st.ValidStart.Sub(b.IssuedAt) / time.Minute); st.LeadMinutes != want {
+					t.Fatalf("step %d lead %d, want %d", i, st.LeadMinutes, want)
+				}
+				row := b.Row(i)
+				for j, v := range row {
+					if v < 0 || v > s.CapacityMW || math.IsNaN(v) {
+						t.Fatalf("bundle %d step %d level %v: %v outside [0, %v]", k, i, b.Levels[j], v, s.CapacityMW)
+					}
+					if j > 0 && v < row[j-1] {
+						t.Fatalf("bundle %d step %d: quantiles cross: %v", k, i, row)
+					}
+				}
+				if s.Kind == model.KindPV && sunBelow(st.ValidStart.Add(7*time.Minute), *s.Lat, *s.Lon, 5) {
+					nights++
+					if row[len(row)-1] != 0 {
+						t.Fatalf("PV at night (%s): %v, want zeros", st.ValidStart, row)
+					}
+				}
+			}
+		}
+		if s.Kind == model.KindPV && nights == 0 {
+			t.Fatal("no night step checked")
+		}
+	}
+}
+
+// TestActorCoverage: on stationary invented data the calibrated coverage of
+// every level ends close to its target (loose bound: a few days of data).
+func TestActorCoverage(t *testing.T) {
+	s := testSites()[1]
+	a := newTestActor(t, s)
+	play(t, a, makeFeed(s, 20, 3))
+	for _, ls := range a.Stats() {
+		if ls.Settled < 1000 {
+			t.Fatalf("level %v: only %d settled", ls.Level, ls.Settled)
+		}
+		if math.Abs(ls.Coverage-ls.Level) > 0.08 {
+			t.Errorf("level %v: coverage %.3f", ls.Level, ls.Coverage)
+		}
+	}
+}
+
+func TestActorRefusals(t *testing.T) {
+	s := testSites()[1]
+	a := newTestActor(t, s)
+	f := makeFeed(s, 2, 4)
+	if err := a.Weather(&f.runs[0]); err != nil {
+		t.Fatal(err)
+	}
+	if err := a.Weather(&f.runs[0]); !errors.Is(err, ErrDuplicate) {
+		t.Fatalf("same run twice: %v, want ErrDuplicate", err)
+	}
+	for i := 0; i < 40; i++ {
+		if err := a.Meter(&f.readings[i]); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := a.Meter(&f.readings[39]); !errors.Is(err, ErrDuplicate) {
+		t.Fatalf("same reading twice: %v, want ErrDuplicate", err)
+	}
+	if err := a.Meter(&f.readings[0]); !errors.Is(err, ErrTooLate) {
+		t.Fatalf("reading 10 h old: %v, want ErrTooLate", err)
+	}
+	far := f.readings[40]
+	far.IntervalStart = far.IntervalStart.Add(400 * 24 * time.Hour)
+	if err := a.Meter(&far); !errors.Is(err, ErrTooFarAhead) {
+		t.Fatalf("reading 400 days ahead: %v, want ErrTooFarAhead", err)
+	}
+	// A late reading inside the lateness window is applied.
+	if err := a.Meter(&f.readings[41]); err != nil {
+		t.Fatal(err)
+	}
+	if err := a.Meter(&f.readings[40]); err != nil {
+		t.Fatalf("reading 15 minutes late: %v", err)
+	}
+}

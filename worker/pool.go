@@ -1,0 +1,337 @@
+package worker
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"hash/fnv"
+	"slices"
+	"strings"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"go.uber.org/zap"
+
+	"github.com/plumb-forecast/plumb/conformal"
+	"github.com/plumb-forecast/plumb/model"
+	"github.com/plumb-forecast/plumb/stream"
+)
+
+// Output receives what the pool produces. Its methods are called from the
+// pool's shard goroutines, concurrently for different sites, and must be
+// safe for that. A bundle is only valid during the call.
+type Output interface {
+	Bundle(b *model.Bundle) error
+	Alarm(e conformal.Event) error
+	Reject(r stream.Reject) error
+}
+
+// PoolOptions configures a Pool. Zero fields take the documented defaults.
+type PoolOptions struct {
+	// Shards is the number of goroutines actors are spread over; 0 means 2.
+	Shards int
+	// QueueLen bounds each shard's input queue; 0 means 4096. A full queue
+	// makes Submit wait (and counts it), so a burst slows the producer
+	// instead of losing inputs.
+	QueueLen int
+	// PublishAll publishes every bundle. By default a bundle is skipped when
+	// a newer input for the same site is already queued (its refresh follows
+	// at once); the site's state is the same either way, only fewer bundles
+	// go out during a burst.
+	PublishAll bool
+	// Decoder limits for inputs; its Sites field is filled by the pool.
+	Decoder stream.Decoder
+	// Logger; nil means no logging.
+	Logger *zap.Logger
+	// Metrics; nil means unregistered metrics.
+	Metrics *Metrics
+	// Clock gives wall time for latency metrics only; nil means time.Now.
+	Clock func() time.Time
+}
+
+// ErrClosed is returned by Submit after the pool has stopped.
+var ErrClosed = errors.New("worker: pool closed")
+
+type item struct {
+	kind    stream.InputKind
+	site    string
+	subject string
+	data    []byte
+	ctl     func() // a control request run on the shard's goroutine
+}
+
+type shard struct {
+	q      chan item
+	actors map[string]*Actor
+}
+
+// Pool routes inputs to site actors, one goroutine per shard, and sends
+// bundles, alarms and rejects to an Output. Every site belongs to exactly
+// one shard, so a site's inputs are applied in the order submitted.
+type Pool struct {
+	cfg    Config
+	out    Output
+	o      PoolOptions
+	log    *zap.Logger
+	m      *Metrics
+	dec    stream.Decoder
+	shards []*shard
+	home   map[string]*shard
+	queued map[string]*atomic.Int32
+
+	mu     sync.RWMutex
+	closed bool
+	active atomic.Int64
+}
+
+// NewPool builds actors for every site.
+func NewPool(sites []model.Site, cfg Config, out Output, o PoolOptions) (*Pool, error) {
+	cfg = cfg.WithDefaults()
+	if o.Shards <= 0 {
+		o.Shards = 2
+	}
+	if o.QueueLen <= 0 {
+		o.QueueLen = 4096
+	}
+	if o.Logger == nil {
+		o.Logger = zap.NewNop()
+	}
+	if o.Metrics == nil {
+		o.Metrics = NewMetrics(nil)
+	}
+	if o.Clock == nil {
+		o.Clock = time.Now
+	}
+	p := &Pool{
+		cfg: cfg, out: out, o: o, log: o.Logger, m: o.Metrics,
+		dec:    o.Decoder,
+		home:   make(map[string]*shard, len(sites)),
+		queued: make(map[string]*atomic.Int32, len(sites)),
+	}
+	p.dec.Sites = make(map[string]model.Site, len(sites))
+	for i := 0; i < o.Shards; i++ {
+		p.shards = append(p.shards, &shard{q: make(chan item, o.QueueLen), actors: map[string]*Actor{}})
+	}
+	for _, s := range sites {
+		a, err := NewActor(s, cfg)
+		if err != nil {
+			return nil, err
+		}
+		h := fnv.New32a()
+		h.Write([]byte(s.ID))
+		sh := p.shards[int(h.Sum32()%uint32(len(p.shards)))]
+		sh.actors[s.ID] = a
+		p.home[s.ID] = sh
+		p.queued[s.ID] = new(atomic.Int32)
+		p.dec.Sites[s.ID] = s
+	}
+	return p, nil
+}
+
+// Config returns the actors' configuration, defaults filled in.
+func (p *Pool) Config() Config { return p.cfg }
+
+// Submit queues one input message received on subject. It rejects at once
+// what cannot be routed (bad subject, unknown site) and otherwise waits for
+// room in the site's shard queue. It returns ErrClosed after Run has ended.
+func (p *Pool) Submit(subject string, data []byte) error {
+	kind, site, err := stream.ParseInputSubject(subject)
+	if err == nil {
+		if _, ok := p.home[site]; !ok {
+			err = &stream.RejectError{Reason: stream.ReasonUnknownSite, Site: site, Detail: fmt.Sprintf("site %q is not in the registry", site)}
+		}
+	}
+	if err != nil {
+		p.reject(subject, site, len(data), err)
+		return nil
+	}
+	p.mu.RLock()
+	defer p.mu.RUnlock()
+	if p.closed {
+		return ErrClosed
+	}
+	it := item{kind: kind, site: site, subject: subject, data: data}
+	sh := p.home[site]
+	p.queued[site].Add(1)
+	p.m.QueueDepth.Inc()
+	select {
+	case sh.q <- it:
+	default:
+		p.m.QueueFull.Inc()
+		sh.q <- it
+	}
+	return nil
+}
+
+// Run applies queued inputs until ctx is cancelled, then stops accepting
+// inputs, applies what is already queued and returns.
+func (p *Pool) Run(ctx context.Context) error {
+	var wg sync.WaitGroup
+	for _, sh := range p.shards {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for it := range sh.q {
+				if it.ctl != nil {
+					it.ctl()
+					continue
+				}
+				p.apply(sh, it)
+			}
+		}()
+	}
+	<-ctx.Done()
+	p.mu.Lock()
+	p.closed = true
+	for _, sh := range p.shards {
+		close(sh.q)
+	}
+	p.mu.Unlock()
+	wg.Wait()
+	return nil
+}
+
+// Idle reports whether no input is queued or being applied.
+func (p *Pool) Idle() bool {
+	for _, q := range p.queued {
+		if q.Load() != 0 {
+			return false
+		}
+	}
+	return true
+}
+
+func (p *Pool) reject(subject, site string, size int, err error) {
+	reason, ok := stream.RejectOf(err)
+	switch {
+	case ok:
+	case errors.Is(err, ErrDuplicate):
+		reason = stream.ReasonDuplicate
+	case errors.Is(err, ErrTooLate):
+		reason = stream.ReasonTooLate
+	case errors.Is(err, ErrTooFarAhead):
+		reason = stream.ReasonBadTime
+	default:
+		reason = stream.ReasonMalformed
+	}
+	p.m.Rejects.WithLabelValues(string(reason)).Inc()
+	r := stream.Reject{Subject: subject, Site: site, Reason: string(reason), Detail: err.Error(), Bytes: size}
+	p.log.Debug("input rejected", zap.String("subject", subject), zap.String("reason", string(reason)), zap.Error(err))
+	if err := p.out.Reject(r); err != nil {
+		p.log.Warn("publish reject", zap.Error(err))
+	}
+}
+
+func (p *Pool) apply(sh *shard, it item) {
+	t0 := p.o.Clock()
+	a := sh.actors[it.site]
+	applied := 0
+	switch it.kind {
+	case stream.InputWeather:
+		runs, err := p.dec.Weather(it.site, it.data)
+		if err != nil {
+			p.reject(it.subject, it.site, len(it.data), err)
+			break
+		}
+		for i := range runs {
+			if err := a.Weather(&runs[i]); err != nil {
+				p.reject(it.subject, it.site, len(it.data), err)
+				continue
+			}
+			applied++
+		}
+		p.m.Inputs.WithLabelValues("weather").Add(float64(applied))
+	case stream.InputMeter:
+		rs, err := p.dec.Meter(it.site, it.data)
+		if err != nil {
+			p.reject(it.subject, it.site, len(it.data), err)
+			break
+		}
+		for i := range rs {
+			if err := a.Meter(&rs[i]); err != nil {
+				p.reject(it.subject, it.site, len(it.data), err)
+				continue
+			}
+			applied++
+		}
+		p.m.Inputs.WithLabelValues("meter").Add(float64(applied))
+		p.m.Settled.Add(float64(applied))
+	}
+	left := p.queued[it.site].Add(-1)
+	p.m.QueueDepth.Dec()
+	if applied == 0 {
+		return
+	}
+	b := a.Refresh()
+	for _, ev := range a.Events() {
+		p.m.AlarmEvents.WithLabelValues(ev.Kind, ev.State).Inc()
+		if ev.State == conformal.StateRaised {
+			p.m.AlarmsActive.Inc()
+		} else {
+			p.m.AlarmsActive.Dec()
+		}
+		if err := p.out.Alarm(ev); err != nil {
+			p.log.Warn("publish alarm", zap.String("site", it.site), zap.Error(err))
+		}
+	}
+	if b == nil {
+		return
+	}
+	p.m.Refreshes.Inc()
+	if left > 0 && !p.o.PublishAll {
+		p.m.Coalesced.Inc()
+	} else if err := p.out.Bundle(b); err != nil {
+		p.log.Warn("publish bundle", zap.String("site", it.site), zap.Error(err))
+	} else {
+		p.m.Published.Inc()
+	}
+	p.m.RefreshSeconds.Observe(p.o.Clock().Sub(t0).Seconds())
+}
+
+// SiteStats is a snapshot of one site's coverage.
+type SiteStats struct {
+	Site         string
+	Now          time.Time
+	Levels       []LevelStats
+	ActiveAlarms int
+}
+
+// Stats returns a snapshot of every site's coverage, sorted by site id. It runs on the shards' goroutines, after the inputs queued
+// before it.
+func (p *Pool) Stats(ctx context.Context) ([]SiteStats, error) {
+	var mu sync.Mutex
+	got := map[string]SiteStats{}
+	var wg sync.WaitGroup
+	p.mu.RLock()
+	if p.closed {
+		p.mu.RUnlock()
+		return nil, ErrClosed
+	}
+	for _, sh := range p.shards {
+		wg.Add(1)
+		sh.q <- item{ctl: func() {
+			defer wg.Done()
+			for id, a := range sh.actors {
+				s := SiteStats{Site: id, Now: a.Now(), Levels: a.Stats(), ActiveAlarms: a.ActiveAlarms()}
+				mu.Lock()
+				got[id] = s
+				mu.Unlock()
+			}
+		}}
+	}
+	p.mu.RUnlock()
+	done := make(chan struct{})
+	go func() { wg.Wait(); close(done) }()
+	select {
+	case <-done:
+	case <-ctx.Done():
+		return nil, ctx.Err()
+	}
+	out := make([]SiteStats, 0, len(got))
+	for id := range p.home {
+		out = append(out, got[id])
+	}
+	slices.SortFunc(out, func(a, b SiteStats) int { return strings.Compare(a.Site, b.Site) })
+	return out, nil
+}
