@@ -18,8 +18,8 @@ type BaselineOptions struct {
 	// used; below it the forecaster falls back to the bucket's pooled
 	// residuals, then to a uniform spread over [0, capacity]. 0 means 30.
 	MinResiduals int
-	// CurveHalfLife is the half-life, in samples, of the running means of the
-	// learned driver-to-power curve; 0 means 200.
+	// CurveHalfLife is the half-life, in settled intervals, of the running
+	// means of the learned driver-to-power curve; 0 means 200.
 	CurveHalfLife float64
 }
 
@@ -204,34 +204,41 @@ func (b *Baseline) Quantiles(dst []float64, x *Features, levels []float64) {
 	}
 }
 
-// Learn implements Forecaster.
-func (b *Baseline) Learn(x *Features, y float64) {
+// Learn implements Forecaster: every pending forecast adds its residual to
+// its lead bucket's pools; the curve and the mean learn once, from the
+// shortest-lead forecast.
+func (b *Baseline) Learn(y float64, xs []*Features) {
+	if len(xs) == 0 || math.IsNaN(y) {
+		return
+	}
+	for _, x := range xs {
+		capMW := avail(x)
+		if !(capMW > 0) {
+			continue
+		}
+		pu := y / capMW
+		e := b.estimate(x)
+		bucket := min(max(x.Bucket, 0), len(b.all)-1)
+		b.pools[bucket*nClasses+classOf(e)].add(pu - e)
+		b.all[bucket].add(pu - e)
+	}
+	x := xs[0]
 	capMW := avail(x)
-	if !(capMW > 0) || math.IsNaN(y) {
+	if !(capMW > 0) {
 		return
 	}
 	pu := y / capMW
-	e := b.estimate(x)
-	bucket := min(max(x.Bucket, 0), len(b.all)-1)
-	b.pools[bucket*nClasses+classOf(e)].add(pu - e)
-	b.all[bucket].add(pu - e)
-
-	// Every lead bucket's settlement of an interval carries the same
-	// outcome, so each update of the curve and the mean weighs 1/buckets:
-	// their half-life stays counted in intervals.
-	wt := 1 / float64(len(b.all))
 	a := math.Ln2 / b.o.CurveHalfLife
 	if !math.IsNaN(x.Driver) {
 		k := int(math.Max(0, x.Driver) / b.binWidth)
 		if k >= len(b.binN) {
 			k = len(b.binN) - 1
 		}
-		b.binN[k] += wt
-		step := math.Max(wt/b.binN[k], a*wt)
-		b.binMean[k] += step * (pu - b.binMean[k])
+		b.binN[k]++
+		b.binMean[k] += math.Max(1/b.binN[k], a) * (pu - b.binMean[k])
 	}
-	b.meanN += wt
-	b.meanPU += math.Max(wt/b.meanN, a*wt) * (pu - b.meanPU)
+	b.meanN++
+	b.meanPU += math.Max(1/b.meanN, a) * (pu - b.meanPU)
 }
 
 // residualPool is a fixed-size window of residuals kept both in arrival

@@ -42,7 +42,9 @@ type Forecaster interface {
 	// (calibrators may push a level out of (0, 1)); levels need not be sorted.
 	// len(dst) must equal len(levels). It does not clip to capacity.
 	Quantiles(dst []float64, x *Features, levels []float64)
-	// Learn feeds one settled outcome: the features the forecast was issued
-	// with and the interval's observed mean power y (MW).
-	Learn(x *Features, y float64)
+	// Learn feeds one settled interval: its observed mean power y (MW) and
+	// the features of each forecast issued for it that was still pending,
+	// one per lead bucket, shortest lead first (at least one). It is called
+	// once per interval; xs and its elements are only valid during the call.
+	Learn(y float64, xs []*Features)
 }

@@ -162,6 +162,7 @@ type Actor struct {
 
 	// scratch
 	adj, tmp, pub []float64
+	learn         []*model.Features
 }
 
 // NewActor returns an actor for site; cfg must already have its defaults
@@ -312,45 +313,47 @@ func (a *Actor) release(tg *target) {
 	}
 }
 
-// settle scores every forecast pending for the reading's interval.
+// settle scores every forecast pending for the reading's interval, then
+// lets the forecaster learn from it once.
 func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 	nl := len(a.cfg.Levels)
 	y := r.PowerMW
+	a.learn = a.learn[:0]
 	for b, p := range tg.byBucket {
-		if p == nil {
+		if p == nil || p.x.Night || r.Curtailed {
 			continue
 		}
-		if !p.x.Night && !r.Curtailed {
-			pit := pitOf(a.cfg.Levels, p.raw, y)
-			copy(a.pub, p.cal)
-			a.publishable(a.pub, &p.x)
-			u := a.tieBreak(r.IntervalStart, b)
-			for j := 0; j < nl; j++ {
-				c := &a.cells[b*nl+j]
-				hit := publishedHit(a.cfg.Levels, a.pub, j, y, u)
-				// The calibrator learns from the published quantile as
-				// judged, ties at a point mass included.
-				issued := a.pub[j]
-				if y == issued && !hit {
-					issued = math.Nextafter(y, math.Inf(-1))
-				}
-				c.cal.Update(conformal.Outcome{Y: y, Issued: issued, PIT: pit})
-				rawHit := pit <= a.cfg.Levels[j]
-				c.mon.Record(hit, true, rawHit)
-				c.settled++
-				if hit {
-					c.hits++
-				}
-				if rawHit {
-					c.rawHits++
-				}
-				a.checkAlarm(c, b, j, at)
+		pit := pitOf(a.cfg.Levels, p.raw, y)
+		copy(a.pub, p.cal)
+		a.publishable(a.pub, &p.x)
+		u := a.tieBreak(r.IntervalStart, b)
+		for j := 0; j < nl; j++ {
+			c := &a.cells[b*nl+j]
+			hit := publishedHit(a.cfg.Levels, a.pub, j, y, u)
+			// The calibrator learns from the published quantile as
+			// judged, ties at a point mass included.
+			issued := a.pub[j]
+			if y == issued && !hit {
+				issued = math.Nextafter(y, math.Inf(-1))
 			}
-			a.fc.Learn(&p.x, y)
+			c.cal.Update(conformal.Outcome{Y: y, Issued: issued, PIT: pit})
+			rawHit := pit <= a.cfg.Levels[j]
+			c.mon.Record(hit, true, rawHit)
+			c.settled++
+			if hit {
+				c.hits++
+			}
+			if rawHit {
+				c.rawHits++
+			}
+			a.checkAlarm(c, b, j, at)
 		}
-		a.free = append(a.free, p)
-		tg.byBucket[b] = nil
+		a.learn = append(a.learn, &p.x)
 	}
+	if len(a.learn) > 0 {
+		a.fc.Learn(y, a.learn) // buckets ascend: shortest lead first
+	}
+	a.release(tg)
 }
 
 func (a *Actor) checkAlarm(c *cell, b, j int, at time.Time) {

@@ -1,0 +1,132 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"io"
+	"regexp"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+)
+
+// syncBuffer is a bytes.Buffer safe for one writer and one reader.
+type syncBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (s *syncBuffer) Write(p []byte) (int, error) {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.b.Write(p)
+}
+
+func (s *syncBuffer) String() string {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.b.String()
+}
+
+func run(t *testing.T, args ...string) (code int, stdout, stderr string) {
+	t.Helper()
+	var o, e bytes.Buffer
+	code = mainCode(context.Background(), args, &o, &e)
+	return code, o.String(), e.String()
+}
+
+func TestHelp(t *testing.T) {
+	code, out, _ := run(t, "help")
+	if code != 0 || !strings.Contains(out, "Commands:") || !strings.Contains(out, "qualified person") {
+		t.Fatalf("help: code %d, output %q", code, out)
+	}
+	for _, c := range commands {
+		code, _, errOut := run(t, c.name, "-h")
+		if code != 0 || !strings.Contains(errOut, "Examples:") || !strings.Contains(errOut, "Flags:") {
+			t.Errorf("%s -h: code %d, output %q", c.name, code, errOut)
+		}
+	}
+	if code, _, errOut := run(t, "frobnicate"); code != 2 || !strings.Contains(errOut, "unknown command") {
+		t.Errorf("unknown command: code %d, %q", code, errOut)
+	}
+	if code, _, errOut := run(t, "run"); code != 2 || !strings.Contains(errOut, "--sites is required") {
+		t.Errorf("run without --sites: code %d, %q", code, errOut)
+	}
+	if code, _, errOut := run(t, "replay", "--data", t.TempDir()); code != 1 || !strings.Contains(errOut, "sites.json") {
+		t.Errorf("replay of an empty folder: code %d, %q", code, errOut)
+	}
+}
+
+// TestDemo runs the README's demo command (as fast as possible) and checks
+// that its report shows the injected fault's alarm being raised.
+func TestDemo(t *testing.T) {
+	if testing.Short() {
+		t.Skip("the demo takes a few seconds")
+	}
+	code, out, errOut := run(t, "demo", "--duration", "0", "--every", "1h")
+	if code != 0 {
+		t.Fatalf("demo: code %d\n%s\n%s", code, out, errOut)
+	}
+	for _, want := range []string{
+		"injected fault: pv-heron-flats",
+		"== report",
+		"Fault caught: coverage_off alarm raised on pv-heron-flats",
+		"The fleet is invented",
+	} {
+		if !strings.Contains(out, want) {
+			t.Errorf("demo output lacks %q:\n%s", want, out)
+		}
+	}
+}
+
+// TestThreeCommands runs `plumb run`, `plumb replay` and `plumb tail` as
+// the README's walk-through does, in one process: the worker's embedded
+// server on a free port, a replay of the first days of the demo data, and a
+// tail that must show a bundle as a table (during a fast replay the worker
+// coalesces, but always publishes a site's last bundle).
+func TestThreeCommands(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	var wOut, wErr syncBuffer
+	done := make(chan int, 1)
+	go func() {
+		done <- mainCode(ctx, []string{"run", "--sites", "../../testdata/demo/sites.json", "--listen", "127.0.0.1:0", "--metrics", "127.0.0.1:0"}, &wOut, &wErr)
+	}()
+	urlRE := regexp.MustCompile(`worker ready: .* --nats (nats://[0-9.:]+)`)
+	var url string
+	for deadline := time.Now().Add(20 * time.Second); url == ""; {
+		if m := urlRE.FindStringSubmatch(wOut.String()); m != nil {
+			url = m[1]
+		} else if time.Now().After(deadline) {
+			t.Fatalf("worker not ready:\n%s\n%s", wOut.String(), wErr.String())
+		}
+		time.Sleep(20 * time.Millisecond)
+	}
+
+	var tOut syncBuffer
+	tailDone := make(chan int, 1)
+	go func() {
+		tailDone <- mainCode(ctx, []string{"tail", "--nats", url, "--site", "wind-gorse-hill", "--count", "1"}, &tOut, io.Discard)
+	}()
+	time.Sleep(300 * time.Millisecond) // let tail subscribe
+	code, out, errOut := run(t, "replay", "--nats", url, "--data", "../../testdata/demo", "--to", "2026-03-03", "--quiet")
+	if code != 0 || !strings.Contains(out, "published 24 weather runs and 570 readings") {
+		t.Fatalf("replay: code %d\n%s\n%s", code, out, errOut)
+	}
+	select {
+	case code := <-tailDone:
+		if code != 0 {
+			t.Fatalf("tail: code %d", code)
+		}
+	case <-time.After(20 * time.Second):
+		t.Fatalf("tail saw no bundle:\n%s", tOut.String())
+	}
+	if s := tOut.String(); !strings.Contains(s, "== wind-gorse-hill") || !strings.Contains(s, "q0.50") {
+		t.Fatalf("tail output:\n%s", s)
+	}
+	cancel()
+	if code := <-done; code != 0 {
+		t.Fatalf("worker exit code %d:\n%s", code, wErr.String())
+	}
+}
