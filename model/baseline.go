@@ -1,9 +1,6 @@
 package model
 
-import (
-	"math"
-	"sort"
-)
+import "math"
 
 // BaselineOptions configures the Baseline forecaster. Zero fields take the
 // documented defaults.
@@ -239,50 +236,4 @@ func (b *Baseline) Learn(y float64, xs []*Features) {
 	}
 	b.meanN++
 	b.meanPU += math.Max(1/b.meanN, a) * (pu - b.meanPU)
-}
-
-// residualPool is a fixed-size window of residuals kept both in arrival
-// order (a ring) and sorted, so a quantile costs O(1) and an update O(n).
-type residualPool struct {
-	ring   []float64
-	next   int
-	full   bool
-	sorted []float64
-}
-
-func newResidualPool(n int) residualPool {
-	return residualPool{ring: make([]float64, n), sorted: make([]float64, 0, n)}
-}
-
-func (p *residualPool) len() int { return len(p.sorted) }
-
-// quantile returns the empirical quantile at level l in (0, 1) by linear
-// interpolation between order statistics: type 7 of Hyndman and Fan (1996),
-// the default of R and NumPy. O(1): the pool is kept sorted.
-func (p *residualPool) quantile(l float64) float64 {
-	x := p.sorted
-	h := l * float64(len(x)-1)
-	i := int(h)
-	if i >= len(x)-1 {
-		return x[len(x)-1]
-	}
-	return x[i] + (h-float64(i))*(x[i+1]-x[i])
-}
-
-func (p *residualPool) add(r float64) {
-	if p.full {
-		old := p.ring[p.next]
-		i := sort.SearchFloat64s(p.sorted, old)
-		copy(p.sorted[i:], p.sorted[i+1:])
-		p.sorted = p.sorted[:len(p.sorted)-1]
-	}
-	p.ring[p.next] = r
-	p.next++
-	if p.next == len(p.ring) {
-		p.next, p.full = 0, true
-	}
-	i := sort.SearchFloat64s(p.sorted, r)
-	p.sorted = append(p.sorted, 0)
-	copy(p.sorted[i+1:], p.sorted[i:])
-	p.sorted[i] = r
 }

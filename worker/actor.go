@@ -152,6 +152,7 @@ type Actor struct {
 	stepMinutes  int
 
 	seen    map[int64]struct{} // interval starts (unix minutes) already applied
+	night   map[int64]bool     // PV: is the interval starting then at night (a cache)
 	pending map[int64]*target  // by target interval start (unix minutes)
 	free    []*pending
 
@@ -175,6 +176,7 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 		lastPower:    math.NaN(),
 		availability: 1,
 		seen:         make(map[int64]struct{}),
+		night:        make(map[int64]bool),
 		pending:      make(map[int64]*target),
 	}
 	nl := len(cfg.Levels)
@@ -302,6 +304,11 @@ func (a *Actor) advance(t time.Time) {
 			delete(a.seen, k)
 		}
 	}
+	for k := range a.night {
+		if k < horizon {
+			delete(a.night, k)
+		}
+	}
 }
 
 func (a *Actor) release(tg *target) {
@@ -326,10 +333,10 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 		pit := pitOf(a.cfg.Levels, p.raw, y)
 		copy(a.pub, p.cal)
 		a.publishable(a.pub, &p.x)
-		u := a.tieBreak(r.IntervalStart, b)
+		u := conformal.TieDraw(a.siteHash, r.IntervalStart, b)
 		for j := 0; j < nl; j++ {
 			c := &a.cells[b*nl+j]
-			hit := publishedHit(a.cfg.Levels, a.pub, j, y, u)
+			hit := conformal.TieHit(a.cfg.Levels, a.pub, j, y, u)
 			// The calibrator learns from the published quantile as
 			// judged, ties at a point mass included.
 			issued := a.pub[j]
@@ -371,50 +378,6 @@ func (a *Actor) Events() []conformal.Event {
 	ev := a.events
 	a.events = nil
 	return ev
-}
-
-// publishedHit reports whether outcome y counts as at or below the
-// published quantile q[j] (q sorted). An outcome equal to several published
-// quantiles sits on a point mass of the forecast (a quantile clipped to zero
-// or to the capacity): its PIT is then uniform between the levels around
-// the tie, and u in [0, 1) draws it (the randomised PIT for distributions
-// with atoms, Czado, Gneiting and Held, Biometrics 65, 2009), so that a
-// calibrated forecast covers each level at its rate.
-func publishedHit(levels, q []float64, j int, y, u float64) bool {
-	if y != q[j] {
-		return y < q[j]
-	}
-	ja, jb := j, j
-	for ja > 0 && q[ja-1] == y {
-		ja--
-	}
-	for jb+1 < len(q) && q[jb+1] == y {
-		jb++
-	}
-	if ja == jb && ja > 0 && jb < len(q)-1 {
-		return true // a single quantile equal to y: no atom, y <= q
-	}
-	lo, hi := 0.0, 1.0
-	if ja > 0 {
-		lo = levels[ja-1]
-	}
-	if jb < len(q)-1 {
-		hi = levels[jb]
-	}
-	return lo+u*(hi-lo) <= levels[j]
-}
-
-// tieBreak returns a uniform number in [0, 1) fixed by the site, the
-// interval and the lead bucket: a random draw that replays identically.
-func (a *Actor) tieBreak(interval time.Time, bucket int) float64 {
-	x := a.siteHash ^ uint64(interval.Unix())*0x9E3779B97F4A7C15 ^ uint64(bucket+1)*0xBF58476D1CE4E5B9
-	// splitmix64 finaliser
-	x ^= x >> 30
-	x *= 0xBF58476D1CE4E5B9
-	x ^= x >> 27
-	x *= 0x94D049BB133111EB
-	x ^= x >> 31
-	return float64(x>>11) / (1 << 53)
 }
 
 // pitOf interpolates the raw forecast's cumulative probability at y on its
@@ -516,7 +479,13 @@ func (a *Actor) features(x *model.Features, t time.Time, step int) {
 		if a.site.HasLocation() {
 			lat, lon := *a.site.Lat, *a.site.Lon
 			end := t.Add(time.Duration(step) * time.Minute)
-			x.Night = sunDown(t, lat, lon) && sunDown(mid, lat, lon) && sunDown(end, lat, lon)
+			key := unixMin(t)
+			night, ok := a.night[key]
+			if !ok {
+				night = sunDown(t, lat, lon) && sunDown(mid, lat, lon) && sunDown(end, lat, lon)
+				a.night[key] = night
+			}
+			x.Night = night
 		} else {
 			x.Night = x.Driver <= 0 // no location: trust the forecast irradiance
 		}

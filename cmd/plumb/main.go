@@ -28,6 +28,7 @@ Commands:
   run       a worker: embedded NATS server by default, or --nats URL
   replay    publish a history folder (sites.json, weather.csv.gz, meter.csv.gz) as inputs
   tail      show bundles, alarms and rejects as they are published
+  backtest  score a forecast set-up on a history folder: report.json, report.html
 
 Run 'plumb <command> -h' for the flags and examples of a command.
 
@@ -46,6 +47,7 @@ var commands = []command{
 	{"run", runWorker},
 	{"replay", runReplay},
 	{"tail", runTail},
+	{"backtest", runBacktest},
 }
 
 func main() {

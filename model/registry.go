@@ -1,0 +1,55 @@
+package model
+
+import (
+	"errors"
+	"fmt"
+	"strings"
+)
+
+// ErrUnknownModel is wrapped by New when no forecaster has the given name.
+var ErrUnknownModel = errors.New("unknown model")
+
+// constructor makes one named forecaster with its default options.
+type constructor struct {
+	name string
+	make func(site Site, buckets Buckets) Forecaster
+}
+
+// constructors lists the forecasters New knows, sorted by name.
+func constructors() []constructor {
+	return []constructor{
+		{"baseline", func(s Site, b Buckets) Forecaster {
+			return NewBaseline(s.Kind, BaselineOptions{Buckets: b})
+		}},
+		{"climatology", func(Site, Buckets) Forecaster {
+			return NewClimatology(ClimatologyOptions{})
+		}},
+		{"persistence", func(_ Site, b Buckets) Forecaster {
+			return NewPersistence(PersistenceOptions{Buckets: b})
+		}},
+	}
+}
+
+// Names returns the names New accepts, sorted. The slice is the caller's.
+func Names() []string {
+	cs := constructors()
+	out := make([]string, len(cs))
+	for i, c := range cs {
+		out[i] = c.name
+	}
+	return out
+}
+
+// New returns a new forecaster for site by name ("baseline", "climatology",
+// "persistence": see Names), with its default options and the given lead
+// buckets (the zero value means DefaultBuckets). The forecaster's Name is
+// name. An unknown name gives an error wrapping ErrUnknownModel that lists
+// the known names.
+func New(name string, site Site, buckets Buckets) (Forecaster, error) {
+	for _, c := range constructors() {
+		if c.name == name {
+			return c.make(site, buckets), nil
+		}
+	}
+	return nil, fmt.Errorf("model: %w %q (known: %s)", ErrUnknownModel, name, strings.Join(Names(), ", "))
+}

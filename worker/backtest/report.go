@@ -1,0 +1,155 @@
+package backtest
+
+import "time"
+
+// ReportSchema is the version of the report.json layout.
+const ReportSchema = 1
+
+// Report is everything a backtest measured; report.json is its JSON
+// encoding and report.html draws it. Levels and lead buckets are listed
+// once; every per-level slice follows Levels, every per-bucket slice follows
+// Buckets. Numbers that cannot be computed (no forecast scored) are 0 with
+// N = 0.
+type Report struct {
+	Schema int    `json:"schema"`
+	Data   string `json:"data"`
+	// From and To bound the scored target intervals: [From, To).
+	From time.Time `json:"from"`
+	To   time.Time `json:"to"`
+	// Sites lists the sites scored, in registry order.
+	Sites   []string  `json:"sites"`
+	Levels  []float64 `json:"levels"`
+	Buckets []string  `json:"lead_buckets"`
+	// DayAheadHour is the UTC issue hour of the day-ahead view, which keeps
+	// forecasts issued at that hour with leads in [0, 24 h).
+	DayAheadHour int `json:"day_ahead_issue_hour"`
+	// Costs are the imbalance prices of the trading-value figures.
+	Costs Costs `json:"costs"`
+	// Refused counts the inputs the main variant's actors refused (late,
+	// duplicate, too far ahead); a clean history gives 0.
+	Refused int `json:"refused_inputs"`
+	// Variants are the forecasters scored, the main one first, the
+	// references (Reference true) last.
+	Variants []Variant `json:"variants"`
+}
+
+// Costs are linear imbalance costs per MWh.
+type Costs struct {
+	// Short is the cost of each MWh delivered short of the bid; Long of each
+	// MWh delivered beyond it.
+	Short float64 `json:"short_per_mwh"`
+	Long  float64 `json:"long_per_mwh"`
+	// CriticalLevel is Long / (Short + Long), the level of the
+	// cost-optimal bid (the newsvendor critical ratio).
+	CriticalLevel float64 `json:"critical_level"`
+	Currency      string  `json:"currency"`
+	// Illustrative is true when the costs are the defaults
+	// DefaultCostShort and DefaultCostLong, not market data.
+	Illustrative bool `json:"illustrative"`
+}
+
+// Variant is one forecaster and calibrator pair.
+type Variant struct {
+	Name       string `json:"name"` // model+calibrator, e.g. "baseline+aci"
+	Model      string `json:"model"`
+	Calibrator string `json:"calibrator"`
+	Reference  bool   `json:"reference"`
+	// Intraday scores every forecast issued; DayAhead only those issued at
+	// DayAheadHour with leads under 24 h.
+	Intraday View `json:"intraday"`
+	DayAhead View `json:"day_ahead"`
+	// Weekly is the intraday coverage of each level per calendar week
+	// (weeks start on Monday, UTC).
+	Weekly []Period `json:"weekly"`
+	// Fan holds the day-ahead forecasts of one site over one week with the
+	// outcomes, for the fan chart (main variant only; nil otherwise).
+	Fan *Fan `json:"fan,omitempty"`
+}
+
+// View is the scores of one selection of forecasts.
+type View struct {
+	// All pools every site and lead.
+	All Scores `json:"all"`
+	// ByBucket pools sites, one entry per lead bucket.
+	ByBucket []Scores `json:"by_lead_bucket"`
+	// BySite pools leads, one entry per site (in Report.Sites order).
+	BySite []SiteScores `json:"by_site"`
+}
+
+// SiteScores are one site's scores and trading value.
+type SiteScores struct {
+	Site    string  `json:"site"`
+	Scores  Scores  `json:"scores"`
+	Trading Trading `json:"trading"`
+}
+
+// Scores summarise N scored forecasts (each a bundle row: one interval, all levels).
+type Scores struct {
+	N int `json:"n"`
+	// Pinball is the mean pinball loss over levels and forecasts (MW).
+	Pinball float64 `json:"pinball"`
+	// PinballByLevel is the mean pinball loss of each level.
+	PinballByLevel []float64 `json:"pinball_by_level"`
+	// CRPS is approximated as 2 x Pinball (exact as the grid of levels
+	// becomes fine and even; METHODS.md section 5).
+	CRPS float64 `json:"crps"`
+	// Skill is 1 - Pinball / the climatology reference's Pinball on the
+	// same selection (0 for the climatology itself, or when unknown).
+	Skill float64 `json:"skill_vs_climatology"`
+	// Coverage is the share of outcomes at or below each level's quantile.
+	Coverage []float64 `json:"coverage"`
+	// KupiecP and ChristoffersenP are the p-values of the unconditional
+	// coverage and the independence tests of each level (METHODS.md
+	// section 5); the independence test runs on the outcomes in the order
+	// their intervals were settled, within each site and lead bucket.
+	KupiecP         []float64 `json:"kupiec_p"`
+	ChristoffersenP []float64 `json:"christoffersen_p"`
+	// Intervals are the central prediction intervals whose two levels are
+	// on the grid (50 %, 80 %, 90 %).
+	Intervals []Interval `json:"intervals"`
+}
+
+// Interval summarises one central prediction interval.
+type Interval struct {
+	Nominal  float64 `json:"nominal"` // 0.5, 0.8, 0.9
+	Lower    float64 `json:"lower_level"`
+	Upper    float64 `json:"upper_level"`
+	Coverage float64 `json:"coverage"`
+	Width    float64 `json:"mean_width"` // MW
+	// Score is the mean interval (Winkler) score at alpha = 1 - Nominal.
+	Score float64 `json:"mean_interval_score"`
+}
+
+// Trading is the expected imbalance cost of bidding each forecast's median
+// against bidding its quantile at the critical level (interpolated on the
+// grid), over the same forecasts, in Costs.Currency.
+type Trading struct {
+	EnergyMWh   float64 `json:"energy_mwh"` // delivered over the scored intervals
+	CostMedian  float64 `json:"cost_median"`
+	CostOptimal float64 `json:"cost_optimal"`
+	// Saving is 1 - CostOptimal / CostMedian.
+	Saving float64 `json:"saving"`
+}
+
+// Period is the coverage of each level over one stretch of time.
+type Period struct {
+	Start    time.Time `json:"start"`
+	N        int       `json:"n"`
+	Coverage []float64 `json:"coverage"`
+}
+
+// Fan is one week of day-ahead forecasts of one site against the outcomes.
+type Fan struct {
+	Site string   `json:"site"`
+	Rows []FanRow `json:"rows"`
+}
+
+// FanRow is one interval of a Fan: its quantiles (Report.Levels) and the
+// outcome (NaN-free: Observed is meaningful only when HasObserved).
+type FanRow struct {
+	ValidStart  time.Time `json:"valid_start"`
+	IssuedAt    time.Time `json:"issued_at"`
+	Q           []float64 `json:"q"`
+	Observed    float64   `json:"observed"`
+	HasObserved bool      `json:"has_observed"`
+}
