@@ -61,9 +61,9 @@ const nClasses = len(classEdges) + 1
 // main driver (irradiance for PV, wind speed for wind) to per-unit output,
 // learned online as running means over driver bins and read by linear
 // interpolation. Before the curve has data, PV uses GHI/1000 times 0.8 (a
-// rough performance ratio, common practice) and wind uses the mean output
-// seen so far. Without a driver the estimate is persistence (the latest
-// reading), or the mean output seen so far.
+// rough performance ratio, common practice). Without a driver the estimate
+// is persistence (the latest reading) for the first hour and the site's
+// mean output at that time of day beyond.
 //
 // Residuals are stored per unit of available capacity, so a pool serves a
 // site whatever its availability.
@@ -76,7 +76,8 @@ type Baseline struct {
 	binMean  []float64
 	binN     []float64
 
-	meanPU, meanN float64 // running mean of per-unit output
+	// Diurnal profile: running mean per-unit output per quarter-hour of the day.
+	profile, profileN [96]float64
 
 	pools []residualPool // [bucket*nClasses+class]
 	all   []residualPool // [bucket]: every class pooled
@@ -120,13 +121,25 @@ func (b *Baseline) estimate(x *Features) float64 {
 			return math.Min(1, math.Max(0, x.Driver/1000*0.8))
 		}
 	}
-	if !math.IsNaN(x.LastPowerMW) && x.CapacityMW > 0 {
+	// No weather driver: persistence for the next hour, then the site's
+	// mean output at that time of day, then persistence again.
+	last := !math.IsNaN(x.LastPowerMW) && x.CapacityMW > 0
+	if last && x.LeadMinutes < 60 {
 		return x.LastPowerMW / avail(x)
 	}
-	if b.meanN > 0 {
-		return b.meanPU
+	if k := profileSlot(x); b.profileN[k] > 0 {
+		return b.profile[k]
+	}
+	if last {
+		return x.LastPowerMW / avail(x)
 	}
 	return 0.5
+}
+
+// profileSlot is the quarter-hour of the day of the interval's start.
+func profileSlot(x *Features) int {
+	t := x.ValidStart.UTC()
+	return (t.Hour()*60 + t.Minute()) / 15
 }
 
 func avail(x *Features) float64 {
@@ -234,6 +247,7 @@ func (b *Baseline) Learn(y float64, xs []*Features) {
 		b.binN[k]++
 		b.binMean[k] += math.Max(1/b.binN[k], a) * (pu - b.binMean[k])
 	}
-	b.meanN++
-	b.meanPU += math.Max(1/b.meanN, a) * (pu - b.meanPU)
+	k := profileSlot(x)
+	b.profileN[k]++
+	b.profile[k] += math.Max(1/b.profileN[k], a) * (pu - b.profile[k])
 }

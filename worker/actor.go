@@ -147,6 +147,8 @@ type Actor struct {
 
 	now          time.Time // event-time now
 	lastMeterEnd time.Time
+	firstMeter   time.Time
+	lit          [96]time.Time // PV: when each quarter-hour of the day last showed output
 	lastPower    float64
 	availability float64
 	stepMinutes  int
@@ -269,6 +271,17 @@ func (a *Actor) Meter(r *model.Reading) error {
 		return fmt.Errorf("%w: interval %s already applied", ErrDuplicate, r.IntervalStart.Format(time.RFC3339))
 	}
 	a.seen[key] = struct{}{}
+	if a.site.Kind == model.KindPV && !math.IsNaN(r.PowerMW) {
+		if a.firstMeter.IsZero() {
+			a.firstMeter = r.IntervalStart
+		}
+		if r.PowerMW > 0.005*a.site.CapacityMW {
+			// Every quarter-hour the reading spans saw light.
+			for m := 0; m < r.IntervalMinutes; m += 15 {
+				a.lit[slotOf(r.IntervalStart.Add(time.Duration(m)*time.Minute))] = end
+			}
+		}
+	}
 	if end.After(a.lastMeterEnd) {
 		a.lastMeterEnd = end
 		a.lastPower = r.PowerMW
@@ -486,10 +499,33 @@ func (a *Actor) features(x *model.Features, t time.Time, step int) {
 				a.night[key] = night
 			}
 			x.Night = night
-		} else {
+		} else if !math.IsNaN(x.Driver) {
 			x.Night = x.Driver <= 0 // no location: trust the forecast irradiance
+		} else {
+			x.Night = a.darkSlot(t) // neither: what the meter has shown
 		}
 	}
+}
+
+// darkSlots is how long a quarter-hour of the day must have shown no output,
+// on every day with a reading, before a PV site without location or
+// irradiance forecast counts it as night.
+const darkSlots = 14 * 24 * time.Hour
+
+// darkSlot reports whether the quarter-hour of the day of t has shown no
+// output for darkSlots while the site was observed that long.
+func (a *Actor) darkSlot(t time.Time) bool {
+	if a.firstMeter.IsZero() || a.now.Sub(a.firstMeter) < darkSlots {
+		return false
+	}
+	lit := a.lit[slotOf(t)]
+	return lit.IsZero() || a.now.Sub(lit) > darkSlots
+}
+
+// slotOf returns the quarter-hour of the day of t (UTC).
+func slotOf(t time.Time) int {
+	t = t.UTC()
+	return (t.Hour()*60 + t.Minute()) / 15
 }
 
 // sunDown reports whether the sun is more than a degree below the horizon.

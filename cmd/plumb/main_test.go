@@ -3,7 +3,10 @@ package main
 import (
 	"bytes"
 	"context"
+	"encoding/json"
 	"io"
+	"os"
+	"path/filepath"
 	"regexp"
 	"strings"
 	"sync"
@@ -128,5 +131,60 @@ func TestThreeCommands(t *testing.T) {
 	cancel()
 	if code := <-done; code != 0 {
 		t.Fatalf("worker exit code %d:\n%s", code, wErr.String())
+	}
+}
+
+// TestBacktestCommand runs `plumb backtest` on a few days of the demo data
+// and checks its three files.
+func TestBacktestCommand(t *testing.T) {
+	if testing.Short() {
+		t.Skip("a short backtest")
+	}
+	out := t.TempDir()
+	code, stdout, errOut := run(t, "backtest", "--data", "../../testdata/demo", "--sites", "pv-saltcombe,wind-ketch-bank",
+		"--from", "2026-03-09", "--to", "2026-03-11", "--out", out, "--quiet")
+	if code != 0 {
+		t.Fatalf("backtest: code %d\n%s\n%s", code, stdout, errOut)
+	}
+	for _, want := range []string{"baseline+aci", "climatology+none (ref)", "persistence+none (ref)", "day-ahead 00h", "report.html"} {
+		if !strings.Contains(stdout, want) {
+			t.Errorf("summary lacks %q:\n%s", want, stdout)
+		}
+	}
+	data, err := os.ReadFile(filepath.Join(out, "report.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var rep struct {
+		Sites    []string `json:"sites"`
+		Variants []struct {
+			Name     string `json:"name"`
+			DayAhead struct {
+				All struct {
+					N int `json:"n"`
+				} `json:"all"`
+			} `json:"day_ahead"`
+		} `json:"variants"`
+	}
+	if err := json.Unmarshal(data, &rep); err != nil {
+		t.Fatal(err)
+	}
+	// 2 days x 96 quarter-hours x 2 sites in the day-ahead view.
+	if len(rep.Sites) != 2 || len(rep.Variants) != 3 || rep.Variants[0].DayAhead.All.N != 2*96*2 {
+		t.Fatalf("report: %+v", rep)
+	}
+	for _, f := range []string{"report.html", "forecasts.arrow"} {
+		if st, err := os.Stat(filepath.Join(out, f)); err != nil || st.Size() == 0 {
+			t.Fatalf("%s: %v", f, err)
+		}
+	}
+	// A malformed folder is refused with the file and line.
+	bad := t.TempDir()
+	os.WriteFile(filepath.Join(bad, "sites.json"), []byte(`[{"id":"a","kind":"pv","capacity_mw":1}]`), 0o644)
+	os.WriteFile(filepath.Join(bad, "weather.csv"), []byte("site,issued_at,valid_start,valid_minutes,ghi_wm2\na,2026-01-01T00:00:00Z,2026-01-01T00:00:00Z,60,1\n"), 0o644)
+	os.WriteFile(filepath.Join(bad, "meter.csv"), []byte("site,interval_start,interval_minutes,power_mw\na,not-a-time,60,1\n"), 0o644)
+	code, _, errOut = run(t, "backtest", "--data", bad, "--out", t.TempDir(), "--quiet")
+	if code != 1 || !strings.Contains(errOut, "meter.csv:2") || !strings.Contains(errOut, "interval_start") {
+		t.Fatalf("malformed folder: code %d, %q", code, errOut)
 	}
 }

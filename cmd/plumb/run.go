@@ -10,6 +10,7 @@ import (
 	"net/http"
 	"os"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -44,6 +45,7 @@ Examples:
 
 // workerFlags are the forecasting settings shared by run and demo.
 type workerFlags struct {
+	model      string
 	levels     string
 	horizon    time.Duration
 	calibrator string
@@ -54,6 +56,7 @@ type workerFlags struct {
 }
 
 func (w *workerFlags) register(fs *flag.FlagSet) {
+	fs.StringVar(&w.model, "model", "baseline", "forecaster: "+strings.Join(model.Names(), ", "))
 	fs.StringVar(&w.levels, "levels", "default", "quantile `levels`: 'default' (0.05..0.95 by 0.05), 'percentiles' (0.01..0.99) or a list such as 0.1,0.5,0.9")
 	fs.DurationVar(&w.horizon, "horizon", 0, "how far ahead a bundle reaches (0: to the end of the next UTC day, at least 36h)")
 	fs.StringVar(&w.calibrator, "calibrator", "aci", "online calibrator per lead bucket and level: aci (adaptive conformal inference) or none")
@@ -83,6 +86,15 @@ func (w *workerFlags) config() (worker.Config, error) {
 	}
 	if _, err := conformal.New(0.5, cfg.Calibrator); err != nil {
 		return worker.Config{}, err
+	}
+	probe := model.Site{ID: "probe", Kind: model.KindWind, CapacityMW: 1}
+	if _, err := model.New(w.model, probe, model.DefaultBuckets()); err != nil {
+		return worker.Config{}, err
+	}
+	name := w.model
+	cfg.NewForecaster = func(s model.Site) model.Forecaster {
+		f, _ := model.New(name, s, model.DefaultBuckets()) // name checked above
+		return f
 	}
 	return cfg, nil
 }
