@@ -82,7 +82,14 @@ type Pool struct {
 
 	mu     sync.RWMutex
 	closed bool
-	active atomic.Int64
+
+	appliedWeather, appliedMeter atomic.Int64
+}
+
+// Applied returns how many weather runs and meter readings the actors have
+// applied so far.
+func (p *Pool) Applied() (weather, meter int64) {
+	return p.appliedWeather.Load(), p.appliedMeter.Load()
 }
 
 // NewPool builds actors for every site.
@@ -242,6 +249,7 @@ func (p *Pool) apply(sh *shard, it item) {
 			applied++
 		}
 		p.m.Inputs.WithLabelValues("weather").Add(float64(applied))
+		p.appliedWeather.Add(int64(applied))
 	case stream.InputMeter:
 		rs, err := p.dec.Meter(it.site, it.data)
 		if err != nil {
@@ -256,6 +264,7 @@ func (p *Pool) apply(sh *shard, it item) {
 			applied++
 		}
 		p.m.Inputs.WithLabelValues("meter").Add(float64(applied))
+		p.appliedMeter.Add(int64(applied))
 		p.m.Settled.Add(float64(applied))
 	}
 	left := p.queued[it.site].Add(-1)

@@ -29,6 +29,7 @@ Commands:
   replay    publish a history folder (sites.json, weather.csv.gz, meter.csv.gz) as inputs
   tail      show bundles, alarms and rejects as they are published
   backtest  score a forecast set-up on a history folder: report.json, report.html
+  bench     load a worker with invented sites; throughput, latency, CPU and memory
 
 Run 'plumb <command> -h' for the flags and examples of a command.
 
@@ -48,6 +49,7 @@ var commands = []command{
 	{"replay", runReplay},
 	{"tail", runTail},
 	{"backtest", runBacktest},
+	{"bench", runBench},
 }
 
 func main() {

@@ -1,0 +1,449 @@
+package worker
+
+import (
+	"bytes"
+	"crypto/sha256"
+	"encoding/binary"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"hash"
+	"math"
+	"testing"
+	"time"
+
+	"github.com/plumb-forecast/plumb/conformal"
+	"github.com/plumb-forecast/plumb/model"
+	"github.com/plumb-forecast/plumb/model/solar"
+	"github.com/plumb-forecast/plumb/stream"
+	"github.com/plumb-forecast/plumb/stream/history"
+)
+
+// variedFeed is makeFeed with the rough edges of live data added, so the
+// fingerprint below walks the actor's rarer paths too: every 37th reading is
+// missing (a gap), every 29th pair arrives swapped (one reading late), every
+// 53rd is curtailed, every 71st has no value (NaN), every 97th is sent
+// twice (a duplicate) and every 89th is followed by a reading 7.5 h old (too
+// late), and availability drops to 0.8 for six hours a day. Invented data,
+// seeded.
+func variedFeed(site model.Site, days int, seed uint64) feed {
+	f := makeFeed(site, days, seed)
+	var rs []model.Reading
+	for i, r := range f.readings {
+		switch {
+		case i%37 == 36:
+			continue
+		case i%53 == 52:
+			r.Curtailed = true
+		case i%71 == 70:
+			r.PowerMW = math.NaN()
+		}
+		if h := r.IntervalStart.Hour(); h >= 10 && h < 16 {
+			r.Availability = 0.8
+			r.PowerMW = math.Min(r.PowerMW, 0.8*site.CapacityMW)
+		}
+		rs = append(rs, r)
+		if i%97 == 96 {
+			rs = append(rs, r)
+		}
+		if i%89 == 88 {
+			rs = append(rs, f.readings[i-30])
+		}
+	}
+	for i := 28; i+1 < len(rs); i += 29 {
+		rs[i], rs[i+1] = rs[i+1], rs[i]
+	}
+	f.readings = rs
+	return f
+}
+
+// fingerprintCase is one actor configuration played over one feed.
+type fingerprintCase struct {
+	name string
+	site model.Site
+	cfg  Config
+	feed feed
+}
+
+func fingerprintCases() []fingerprintCase {
+	sites := testSites()
+	// A PV site without location: its feed is made for the same site placed
+	// somewhere (makeFeed needs the sun), then the location is dropped.
+	pvNoLoc := model.Site{ID: "pv-noloc", Kind: model.KindPV, CapacityMW: 5, Lat: ptr(-20), Lon: ptr(100)}
+	noLocFeed := variedFeed(pvNoLoc, 16, 15)
+	pvNoLoc.Lat, pvNoLoc.Lon = nil, nil
+	return []fingerprintCase{
+		{"pv default", sites[0], Config{}, makeFeed(sites[0], 4, 11)},
+		{"wind default", sites[1], Config{}, makeFeed(sites[1], 4, 12)},
+		{"pv varied", sites[0], Config{}, variedFeed(sites[0], 4, 13)},
+		{"wind varied", sites[1], Config{}, variedFeed(sites[1], 4, 14)},
+		{"pv no location", pvNoLoc, Config{}, feed{runs: noLocFeed.runs[:12], readings: noLocFeed.readings[:3*96]}},
+		{"pv no location no weather", pvNoLoc, Config{}, feed{readings: noLocFeed.readings}},
+		{"wind 99 levels 48 steps", sites[1], Config{Levels: model.LevelGrid(100), HorizonMinutes: 48 * 15}, variedFeed(sites[1], 3, 16)},
+		{"pv 9 levels 192 steps", sites[0], Config{Levels: model.LevelGrid(10), HorizonMinutes: 192 * 15}, variedFeed(sites[0], 3, 17)},
+		{"wind calibrator none", sites[1], Config{Calibrator: conformal.Options{Method: conformal.MethodNone}}, variedFeed(sites[1], 3, 18)},
+		{"wind small window alarms", sites[1], Config{CoverageWindow: 96}, variedFeed(sites[1], 4, 19)},
+	}
+}
+
+// fingerprint plays every case and hashes what the actors give out: every
+// encoded bundle, every alarm event (JSON), every refusal's error text and
+// the final coverage statistics.
+func fingerprint(t *testing.T) string {
+	t.Helper()
+	h := sha256.New()
+	for _, c := range fingerprintCases() {
+		a, err := NewActor(c.site, c.cfg.WithDefaults())
+		if err != nil {
+			t.Fatal(err)
+		}
+		fmt.Fprintf(h, "case %s\n", c.name)
+		playHash(t, h, a, c.feed)
+	}
+	return hex.EncodeToString(h.Sum(nil))
+}
+
+func playHash(t *testing.T, h hash.Hash, a *Actor, f feed) {
+	t.Helper()
+	enc := stream.NewBundleEncoder()
+	var buf bytes.Buffer
+	ri := 0
+	refused := func(err error) {
+		if err != nil {
+			if !errors.Is(err, ErrDuplicate) && !errors.Is(err, ErrTooLate) && !errors.Is(err, ErrTooFarAhead) {
+				t.Fatal(err)
+			}
+			fmt.Fprintf(h, "refused %v\n", err)
+		}
+	}
+	for k := range f.readings {
+		r := &f.readings[k]
+		for ri < len(f.runs) && !f.runs[ri].IssuedAt.After(r.End()) {
+			refused(a.Weather(&f.runs[ri]))
+			ri++
+		}
+		refused(a.Meter(r))
+		for _, ev := range a.Events() {
+			js, err := json.Marshal(ev)
+			if err != nil {
+				t.Fatal(err)
+			}
+			h.Write(js)
+		}
+		b := a.Refresh()
+		buf.Reset()
+		if err := enc.Encode(&buf, b); err != nil {
+			t.Fatal(err)
+		}
+		h.Write(buf.Bytes())
+	}
+	for _, s := range a.Stats() {
+		for _, v := range []float64{s.Level, float64(s.Settled), s.Coverage, s.Raw} {
+			h.Write(binary.LittleEndian.AppendUint64(nil, math.Float64bits(v)))
+		}
+	}
+	fmt.Fprintf(h, "alarms %d\n", a.ActiveAlarms())
+}
+
+// wantFingerprint is the SHA-256 of everything fingerprintCases give out,
+// recorded with the actor, the baseline forecaster and the bundle encoder
+// as they stood before the performance work of issue 7 (commit de617d0),
+// by running this test and copying the value it printed. The optimised
+// code must give the same bytes for the same inputs.
+const wantFingerprint = "d6ceb1850e8cb5418ef7b231a378a21efbf01567240ba0a517440f1c0bb273db"
+
+// TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
+// events, refusals, coverage statistics) over a fixed invented feed is the
+// same as before the performance work.
+func TestFingerprintUnchanged(t *testing.T) {
+	got := fingerprint(t)
+	if got != wantFingerprint {
+		t.Errorf("fingerprint %s, want %s", got, wantFingerprint)
+	}
+}
+
+// demoFingerprint replays the demo fleet (testdata/demo, invented) the way
+// the pool applies inputs, one actor per site and a refresh after every
+// applied input, and hashes every bundle, alarm event and refusal.
+func demoFingerprint(t *testing.T) string {
+	t.Helper()
+	h, err := history.Load("../testdata/demo", history.LoadOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg := Config{}.WithDefaults()
+	actors := map[string]*Actor{}
+	for _, s := range h.Sites {
+		if actors[s.ID], err = NewActor(s, cfg); err != nil {
+			t.Fatal(err)
+		}
+	}
+	sum := sha256.New()
+	enc := stream.NewBundleEncoder()
+	var buf bytes.Buffer
+	for _, ev := range h.Events() {
+		a := actors[ev.Site()]
+		if ev.Run != nil {
+			err = a.Weather(ev.Run)
+		} else {
+			err = a.Meter(ev.Reading)
+		}
+		if err != nil {
+			fmt.Fprintf(sum, "refused %v\n", err)
+			continue
+		}
+		for _, e := range a.Events() {
+			js, err := json.Marshal(e)
+			if err != nil {
+				t.Fatal(err)
+			}
+			sum.Write(js)
+		}
+		buf.Reset()
+		if err := enc.Encode(&buf, a.Refresh()); err != nil {
+			t.Fatal(err)
+		}
+		sum.Write(buf.Bytes())
+	}
+	return hex.EncodeToString(sum.Sum(nil))
+}
+
+// wantDemoFingerprint was recorded like wantFingerprint, before the
+// performance work of issue 7 (commit de617d0).
+const wantDemoFingerprint = "c7dd6e15bd1695ac9caf2e1553a620ef91740ab17774093ff01533c6102389ae"
+
+// TestDemoFingerprintUnchanged: replaying the demo fleet gives the same
+// bundles and alarms, byte for byte, as before the performance work.
+func TestDemoFingerprintUnchanged(t *testing.T) {
+	if testing.Short() {
+		t.Skip("replays 28 days of six sites; skipped with -short")
+	}
+	if got := demoFingerprint(t); got != wantDemoFingerprint {
+		t.Errorf("demo fingerprint %s, want %s", got, wantDemoFingerprint)
+	}
+}
+
+// benchGen is an endless invented feed for one site that allocates nothing
+// once built: 15-minute readings following a smooth per-unit truth with
+// hashed noise, and a weather run every 6 h (48 hourly rows) written in
+// place into a ring of run records the actor has long let go of (it keeps
+// Config.KeepRuns = 4 of them, the ring holds 8).
+type benchGen struct {
+	site model.Site
+	runs [8]model.WeatherRun
+	next int // readings produced
+	nrun int // runs produced
+	rd   model.Reading
+}
+
+func newBenchGen(site model.Site) *benchGen {
+	g := &benchGen{site: site}
+	for i := range g.runs {
+		r := &g.runs[i]
+		r.Site = site.ID
+		if site.Kind == model.KindPV {
+			r.Vars = []string{"ghi_wm2", "temp_c"}
+		} else {
+			r.Vars = []string{"temp_c", "wind_ms"}
+		}
+		r.Rows = make([]model.WeatherRow, 48)
+		for h := range r.Rows {
+			r.Rows[h] = model.WeatherRow{ValidMinutes: 60, Values: make([]float64, 2)}
+		}
+	}
+	return g
+}
+
+// noise returns a number in [-1, 1) fixed by k and salt (splitmix64).
+func noise(k, salt uint64) float64 {
+	x := k*0x9E3779B97F4A7C15 ^ salt*0xBF58476D1CE4E5B9
+	x ^= x >> 30
+	x *= 0xBF58476D1CE4E5B9
+	x ^= x >> 27
+	x *= 0x94D049BB133111EB
+	x ^= x >> 31
+	return float64(x>>11)/(1<<52) - 1
+}
+
+func (g *benchGen) truth(t time.Time) float64 {
+	if g.site.Kind == model.KindPV {
+		z, _ := solar.Position(t, *g.site.Lat, *g.site.Lon)
+		h := float64(t.Hour()) + float64(t.Minute())/60
+		return math.Max(0, math.Sin((90-z)*math.Pi/180)) * (0.6 + 0.4*math.Sin(float64(t.YearDay())+h/7))
+	}
+	return 0.5 + 0.4*math.Sin(float64(t.Unix())/40000)
+}
+
+// step applies the runs issued by the end of the next reading, then the
+// reading.
+func (g *benchGen) step(a *Actor) error {
+	s := t0.Add(time.Duration(g.next) * 15 * time.Minute)
+	end := s.Add(15 * time.Minute)
+	for {
+		iss := t0.Add(time.Duration(g.nrun) * 6 * time.Hour)
+		if iss.After(end) {
+			break
+		}
+		r := &g.runs[g.nrun%len(g.runs)]
+		r.IssuedAt = iss
+		for h := range r.Rows {
+			row := &r.Rows[h]
+			row.ValidStart = iss.Add(time.Duration(h) * time.Hour)
+			v := g.truth(row.ValidStart.Add(30*time.Minute)) * (1 + 0.05*noise(uint64(g.nrun*48+h), 1))
+			if g.site.Kind == model.KindPV {
+				row.Values[0], row.Values[1] = math.Max(0, 1000*v), 12
+			} else {
+				row.Values[0], row.Values[1] = 8, math.Max(0, 15*v)
+			}
+		}
+		g.nrun++
+		if err := a.Weather(r); err != nil {
+			return err
+		}
+	}
+	p := g.site.CapacityMW * g.truth(s.Add(7*time.Minute)) * (1 + 0.1*noise(uint64(g.next), 2))
+	g.rd = model.Reading{Site: g.site.ID, IntervalStart: s, IntervalMinutes: 15,
+		PowerMW: math.Max(0, math.Min(g.site.CapacityMW, p)), Availability: 1}
+	g.next++
+	return a.Meter(&g.rd)
+}
+
+// benchSizes are the bundle sizes the benchmarks run at: steps ahead (15
+// minutes each) and levels.
+var benchSizes = []struct{ steps, levels int }{
+	{48, 9}, {48, 19}, {48, 99},
+	{144, 9}, {144, 19}, {144, 99},
+	{192, 9}, {192, 19}, {192, 99},
+}
+
+func levelsOf(n int) []float64 {
+	if n == 19 {
+		return model.DefaultLevels()
+	}
+	return model.LevelGrid(n + 1)
+}
+
+// warmDays is how long a benchmark actor runs before it is measured: every
+// residual pool of the baseline has filled (720 residuals) and the pending
+// forecasts have reached their steady number.
+const warmDays = 10
+
+// warmActor returns an actor for site with the given bundle size, warmed
+// with warmDays of invented data, and its feed.
+func warmActor(tb testing.TB, site model.Site, steps, levels int) (*Actor, *benchGen) {
+	tb.Helper()
+	a, err := NewActor(site, Config{Levels: levelsOf(levels), HorizonMinutes: steps * 15}.WithDefaults())
+	if err != nil {
+		tb.Fatal(err)
+	}
+	g := newBenchGen(site)
+	for range warmDays * 96 {
+		if err := g.step(a); err != nil {
+			tb.Fatal(err)
+		}
+		a.Refresh()
+	}
+	return a, g
+}
+
+func sizeName(steps, levels int) string { return fmt.Sprintf("steps=%d/levels=%d", steps, levels) }
+
+// BenchmarkRefresh times Actor.Refresh alone at steady state: each
+// iteration applies the next reading (and run) untimed, then refreshes.
+func BenchmarkRefresh(b *testing.B) {
+	for _, sz := range benchSizes {
+		b.Run(sizeName(sz.steps, sz.levels), func(b *testing.B) {
+			a, g := warmActor(b, testSites()[1], sz.steps, sz.levels)
+			b.ReportAllocs()
+			for b.Loop() {
+				b.StopTimer()
+				if err := g.step(a); err != nil {
+					b.Fatal(err)
+				}
+				b.StartTimer()
+				a.Refresh()
+			}
+		})
+	}
+	b.Run("pv/"+sizeName(144, 19), func(b *testing.B) {
+		a, g := warmActor(b, testSites()[0], 144, 19)
+		b.ReportAllocs()
+		for b.Loop() {
+			b.StopTimer()
+			if err := g.step(a); err != nil {
+				b.Fatal(err)
+			}
+			b.StartTimer()
+			a.Refresh()
+		}
+	})
+}
+
+// BenchmarkRefreshEncode times Refresh and the Arrow encoding of its bundle
+// into a reused buffer, the per-refresh figure of issue 7; the reading
+// before each refresh is applied untimed.
+func BenchmarkRefreshEncode(b *testing.B) {
+	for _, sz := range benchSizes {
+		b.Run(sizeName(sz.steps, sz.levels), func(b *testing.B) {
+			a, g := warmActor(b, testSites()[1], sz.steps, sz.levels)
+			enc := stream.NewBundleEncoder()
+			var buf bytes.Buffer
+			b.ReportAllocs()
+			for b.Loop() {
+				b.StopTimer()
+				if err := g.step(a); err != nil {
+					b.Fatal(err)
+				}
+				b.StartTimer()
+				buf.Reset()
+				if err := enc.Encode(&buf, a.Refresh()); err != nil {
+					b.Fatal(err)
+				}
+			}
+			b.SetBytes(int64(buf.Len()))
+		})
+	}
+}
+
+// BenchmarkSettle times a Meter call that settles the forecasts pending for
+// its interval (one per lead bucket: calibrators, monitors, alarm checks,
+// Learn); the refresh after it is untimed.
+func BenchmarkSettle(b *testing.B) {
+	for _, sz := range benchSizes {
+		b.Run(sizeName(sz.steps, sz.levels), func(b *testing.B) {
+			a, g := warmActor(b, testSites()[1], sz.steps, sz.levels)
+			b.ReportAllocs()
+			for b.Loop() {
+				if err := g.step(a); err != nil {
+					b.Fatal(err)
+				}
+				b.StopTimer()
+				a.Refresh()
+				b.StartTimer()
+			}
+		})
+	}
+}
+
+// BenchmarkInput times everything one reading costs a site: Meter (with
+// the weather run every 24th reading), Refresh and Encode.
+func BenchmarkInput(b *testing.B) {
+	for _, site := range testSites() {
+		b.Run(site.ID+"/"+sizeName(144, 19), func(b *testing.B) {
+			a, g := warmActor(b, site, 144, 19)
+			enc := stream.NewBundleEncoder()
+			var buf bytes.Buffer
+			b.ReportAllocs()
+			for b.Loop() {
+				if err := g.step(a); err != nil {
+					b.Fatal(err)
+				}
+				buf.Reset()
+				if err := enc.Encode(&buf, a.Refresh()); err != nil {
+					b.Fatal(err)
+				}
+			}
+		})
+	}
+}
