@@ -13,6 +13,10 @@ import (
 const (
 	// KindCoverage: the calibrated coverage of a level is off target.
 	KindCoverage = "coverage_off"
+	// KindRawDrift: the raw model's coverage of a level is far off target,
+	// so the calibrator is working hard to compensate: the model has
+	// drifted from the site (a fault, soiling, a weather-model change).
+	KindRawDrift = "raw_drift"
 
 	StateRaised  = "raised"
 	StateCleared = "cleared"
@@ -83,6 +87,8 @@ type AlarmOptions struct {
 	// estimates the standard error of the window's coverage, never taken
 	// below the binomial one. Zero means 8; it must be at least 2.
 	Batches int
+	// Kind is the alarm kind of the events; "" means KindCoverage.
+	Kind string
 }
 
 // resolve applies the defaults and checks the options.
@@ -101,6 +107,9 @@ func (o AlarmOptions) resolve() (AlarmOptions, error) {
 	}
 	if o.Batches == 0 {
 		o.Batches = DefaultAlarmBatches
+	}
+	if o.Kind == "" {
+		o.Kind = KindCoverage
 	}
 
 	switch {
@@ -196,6 +205,9 @@ func (a *CoverageAlarm) test(w *Window, target float64) float64 {
 	n := float64(w.Count())
 	cov := w.Coverage()
 	se := math.Sqrt(target * (1 - target) / n) // binomial, independent outcomes
+	if len(a.batch) != a.opt.Batches {
+		a.batch = make([]float64, a.opt.Batches) // after UnmarshalBinary
+	}
 	b := w.BatchCoverages(a.batch)
 	var ss float64
 	for _, c := range b {
@@ -210,6 +222,14 @@ func (a *CoverageAlarm) test(w *Window, target float64) float64 {
 	return 2 * distuv.UnitNormal.Survival(z)
 }
 
+// what names the coverage the alarm watches, for its reasons.
+func (a *CoverageAlarm) what() string {
+	if a.opt.Kind == KindRawDrift {
+		return "raw model coverage (before calibration)"
+	}
+	return "calibrated coverage"
+}
+
 // Event describes the alarm's current state and last check as a payload of
 // kind KindCoverage for a site, a quantile level and a lead bucket name, at
 // the given event time (taken from the data; stored in UTC). Call it after
@@ -218,7 +238,7 @@ func (a *CoverageAlarm) test(w *Window, target float64) float64 {
 func (a *CoverageAlarm) Event(site string, level float64, leadBucket string, at time.Time) Event {
 	e := Event{
 		Site:       site,
-		Kind:       KindCoverage,
+		Kind:       a.opt.Kind,
 		State:      StateCleared,
 		Level:      level,
 		LeadBucket: leadBucket,
@@ -234,11 +254,11 @@ func (a *CoverageAlarm) Event(site string, level float64, leadBucket string, at 
 		if a.observed > a.target {
 			dir = "above"
 		}
-		e.Reason = fmt.Sprintf("calibrated coverage %.3f is %s target %.3f by more than %.3f over %d outcomes (batch-means test p-value %.2g, under %.2g)",
-			a.observed, dir, a.target, a.opt.Tolerance, a.n, a.pValue, a.opt.PValue)
+		e.Reason = fmt.Sprintf("%s %.3f is %s target %.3f by more than %.3f over %d outcomes (batch-means test p-value %.2g, under %.2g)",
+			a.what(), a.observed, dir, a.target, a.opt.Tolerance, a.n, a.pValue, a.opt.PValue)
 	} else {
-		e.Reason = fmt.Sprintf("calibrated coverage %.3f is back within %.3f of target %.3f over %d outcomes",
-			a.observed, a.opt.ClearTolerance, a.target, a.n)
+		e.Reason = fmt.Sprintf("%s %.3f is back within %.3f of target %.3f over %d outcomes",
+			a.what(), a.observed, a.opt.ClearTolerance, a.target, a.n)
 	}
 	return e
 }

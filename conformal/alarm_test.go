@@ -189,7 +189,7 @@ func TestAlarmOptions(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	want := AlarmOptions{Tolerance: 0.05, ClearTolerance: 0.025, PValue: 0.01, MinSamples: 96, Batches: 8}
+	want := AlarmOptions{Tolerance: 0.05, ClearTolerance: 0.025, PValue: 0.01, MinSamples: 96, Batches: 8, Kind: KindCoverage}
 	if a.Options() != want {
 		t.Errorf("defaults %+v, want %+v", a.Options(), want)
 	}

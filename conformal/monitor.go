@@ -24,8 +24,12 @@ type MonitorOptions struct {
 	// coverages. Zero means 96 (a day of 15-minute intervals); it must be
 	// positive and finite otherwise.
 	HalfLife float64
-	// Alarm configures the coverage alarm.
+	// Alarm configures the coverage alarm on the calibrated forecast.
 	Alarm AlarmOptions
+	// RawAlarm configures the raw-drift alarm on the raw model's coverage;
+	// its zero Tolerance means 0.1 (a raw model that far off keeps the
+	// calibrator working hard) and its Kind is always KindRawDrift.
+	RawAlarm AlarmOptions
 }
 
 // Monitor groups what one (lead bucket, level) of a site needs to watch its
@@ -45,6 +49,8 @@ type Monitor struct {
 	CalibratedEW, RawEW *EWCoverage
 	// Alarm watches the calibrated coverage.
 	Alarm *CoverageAlarm
+	// RawAlarm watches the raw model's coverage (kind KindRawDrift).
+	RawAlarm *CoverageAlarm
 }
 
 // NewMonitor returns an empty monitor of a level in (0, 1), or an error for
@@ -69,6 +75,18 @@ func NewMonitor(level float64, o MonitorOptions) (*Monitor, error) {
 	if err != nil {
 		return nil, err
 	}
+	ro := o.RawAlarm
+	ro.Kind = KindRawDrift
+	if ro.Tolerance == 0 {
+		ro.Tolerance = 0.1
+	}
+	if ro.MinSamples == 0 {
+		ro.MinSamples = o.Alarm.MinSamples
+	}
+	rawAlarm, err := NewCoverageAlarm(ro)
+	if err != nil {
+		return nil, err
+	}
 	return &Monitor{
 		Level:        level,
 		Calibrated:   NewWindow(o.Window),
@@ -76,6 +94,7 @@ func NewMonitor(level float64, o MonitorOptions) (*Monitor, error) {
 		CalibratedEW: NewEWCoverage(o.HalfLife),
 		RawEW:        NewEWCoverage(o.HalfLife),
 		Alarm:        alarm,
+		RawAlarm:     rawAlarm,
 	}, nil
 }
 
@@ -109,6 +128,16 @@ func (m *Monitor) Check() (changed, raised bool) {
 	return m.Alarm.Check(m.Calibrated, m.Level)
 }
 
+// CheckRaw runs the raw-drift alarm on the raw window against Level.
+func (m *Monitor) CheckRaw() (changed, raised bool) {
+	return m.RawAlarm.Check(m.Raw, m.Level)
+}
+
+// RawEvent is the raw-drift alarm's payload for this monitor's level.
+func (m *Monitor) RawEvent(site, leadBucket string, at time.Time) Event {
+	return m.RawAlarm.Event(site, m.Level, leadBucket, at)
+}
+
 // Event is the alarm's payload for this monitor's level; see
 // CoverageAlarm.Event.
 func (m *Monitor) Event(site, leadBucket string, at time.Time) Event {
@@ -117,12 +146,12 @@ func (m *Monitor) Event(site, leadBucket string, at time.Time) Event {
 
 // MarshalBinary encodes the monitor's state: a version byte (1), the level
 // as a little-endian double, then the states of Calibrated, Raw,
-// CalibratedEW, RawEW and Alarm, each preceded by its length as a
+// CalibratedEW, RawEW, Alarm and RawAlarm, each preceded by its length as a
 // little-endian uint32.
 func (m *Monitor) MarshalBinary() ([]byte, error) {
 	b := append(make([]byte, 0, 64), stateVersion)
 	b = appendFloat(b, m.Level)
-	for _, p := range []encoding.BinaryMarshaler{m.Calibrated, m.Raw, m.CalibratedEW, m.RawEW, m.Alarm} {
+	for _, p := range []encoding.BinaryMarshaler{m.Calibrated, m.Raw, m.CalibratedEW, m.RawEW, m.Alarm, m.RawAlarm} {
 		s, err := p.MarshalBinary()
 		if err != nil {
 			return nil, err
@@ -150,15 +179,20 @@ func (m *Monitor) UnmarshalBinary(data []byte) error {
 	if checkLevel(level) != nil {
 		return fmt.Errorf("%w: monitor: level %v is outside (0, 1)", ErrState, level)
 	}
-	alarm := &CoverageAlarm{}
+	alarm, rawAlarm := &CoverageAlarm{}, &CoverageAlarm{}
 	if m.Alarm != nil {
 		alarm.opt = m.Alarm.opt
 	} else if alarm.opt, err = (AlarmOptions{}).resolve(); err != nil {
 		return err
 	}
+	if m.RawAlarm != nil {
+		rawAlarm.opt = m.RawAlarm.opt
+	} else if rawAlarm.opt, err = (AlarmOptions{Tolerance: 0.1, Kind: KindRawDrift}).resolve(); err != nil {
+		return err
+	}
 	next := Monitor{Level: level, Calibrated: &Window{}, Raw: &Window{},
-		CalibratedEW: &EWCoverage{}, RawEW: &EWCoverage{}, Alarm: alarm}
-	for _, p := range []encoding.BinaryUnmarshaler{next.Calibrated, next.Raw, next.CalibratedEW, next.RawEW, next.Alarm} {
+		CalibratedEW: &EWCoverage{}, RawEW: &EWCoverage{}, Alarm: alarm, RawAlarm: rawAlarm}
+	for _, p := range []encoding.BinaryUnmarshaler{next.Calibrated, next.Raw, next.CalibratedEW, next.RawEW, next.Alarm, next.RawAlarm} {
 		if len(r.b) < 4 {
 			return fmt.Errorf("%w: monitor: truncated", ErrState)
 		}

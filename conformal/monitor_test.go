@@ -5,6 +5,7 @@ import (
 	"errors"
 	"math"
 	"math/rand/v2"
+	"strings"
 	"testing"
 	"time"
 )
@@ -166,4 +167,46 @@ func FuzzMonitorUnmarshal(f *testing.F) {
 		m.Observe(Outcome{Y: 0, Issued: 1, PIT: 0.5})
 		m.Check()
 	})
+}
+
+// TestMonitorRawDrift: a raw model covering a 0.5 level 80 % of the time
+// while the calibrated forecast holds the level raises raw_drift, not
+// coverage_off.
+func TestMonitorRawDrift(t *testing.T) {
+	m, err := NewMonitor(0.5, MonitorOptions{Window: 400})
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i := range 400 {
+		m.Record(i%2 == 0, true, i%5 != 0) // calibrated 50 %, raw 80 %, spread evenly
+	}
+	if changed, raised := m.Check(); changed || raised {
+		t.Fatal("calibrated coverage on target, yet coverage_off raised")
+	}
+	changed, raised := m.CheckRaw()
+	if !changed || !raised {
+		t.Fatal("raw coverage 0.8 for level 0.5: raw_drift not raised")
+	}
+	e := m.RawEvent("wind-test", "4h-8h", time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC))
+	if e.Kind != KindRawDrift || e.State != StateRaised || e.Observed != 0.8 || !strings.Contains(e.Reason, "raw model") {
+		t.Fatalf("event %+v", e)
+	}
+	// The raw alarm survives a state round trip.
+	b, err := m.MarshalBinary()
+	if err != nil {
+		t.Fatal(err)
+	}
+	r, _ := NewMonitor(0.5, MonitorOptions{Window: 400})
+	if err := r.UnmarshalBinary(b); err != nil {
+		t.Fatal(err)
+	}
+	if !r.RawAlarm.Raised() || r.Alarm.Raised() {
+		t.Fatal("restored monitor lost its alarm states")
+	}
+	for range 400 {
+		r.Record(true, true, true)
+	}
+	if _, raised := r.Check(); !raised {
+		t.Fatal("a restored monitor cannot run its coverage test")
+	}
 }

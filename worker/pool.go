@@ -46,8 +46,12 @@ type PoolOptions struct {
 	Logger *zap.Logger
 	// Metrics; nil means unregistered metrics.
 	Metrics *Metrics
-	// Clock gives wall time for latency metrics only; nil means time.Now.
+	// Clock gives wall time for latency metrics and the health checks
+	// only; nil means time.Now.
 	Clock func() time.Time
+	// Health configures the input health checks (stale weather, meter
+	// gaps, reject rate).
+	Health HealthOptions
 }
 
 // ErrClosed is returned by Submit after the pool has stopped.
@@ -70,15 +74,18 @@ type shard struct {
 // bundles, alarms and rejects to an Output. Every site belongs to exactly
 // one shard, so a site's inputs are applied in the order submitted.
 type Pool struct {
-	cfg    Config
-	out    Output
-	o      PoolOptions
-	log    *zap.Logger
-	m      *Metrics
-	dec    stream.Decoder
-	shards []*shard
-	home   map[string]*shard
-	queued map[string]*atomic.Int32
+	cfg     Config
+	out     Output
+	o       PoolOptions
+	log     *zap.Logger
+	m       *Metrics
+	dec     stream.Decoder
+	shards  []*shard
+	home    map[string]*shard
+	queued  map[string]*atomic.Int32
+	health  map[string]*siteHealth
+	order   []string // site ids in registry order
+	started time.Time
 
 	mu     sync.RWMutex
 	closed bool
@@ -110,11 +117,14 @@ func NewPool(sites []model.Site, cfg Config, out Output, o PoolOptions) (*Pool, 
 	if o.Clock == nil {
 		o.Clock = time.Now
 	}
+	o.Health = o.Health.withDefaults()
 	p := &Pool{
 		cfg: cfg, out: out, o: o, log: o.Logger, m: o.Metrics,
-		dec:    o.Decoder,
-		home:   make(map[string]*shard, len(sites)),
-		queued: make(map[string]*atomic.Int32, len(sites)),
+		dec:     o.Decoder,
+		home:    make(map[string]*shard, len(sites)),
+		queued:  make(map[string]*atomic.Int32, len(sites)),
+		health:  make(map[string]*siteHealth, len(sites)),
+		started: o.Clock(),
 	}
 	p.dec.Sites = make(map[string]model.Site, len(sites))
 	for i := 0; i < o.Shards; i++ {
@@ -131,6 +141,8 @@ func NewPool(sites []model.Site, cfg Config, out Output, o PoolOptions) (*Pool, 
 		sh.actors[s.ID] = a
 		p.home[s.ID] = sh
 		p.queued[s.ID] = new(atomic.Int32)
+		p.health[s.ID] = &siteHealth{raised: map[string]bool{}}
+		p.order = append(p.order, s.ID)
 		p.dec.Sites[s.ID] = s
 	}
 	return p, nil
@@ -175,6 +187,11 @@ func (p *Pool) Submit(subject string, data []byte) error {
 // inputs, applies what is already queued and returns.
 func (p *Pool) Run(ctx context.Context) error {
 	var wg sync.WaitGroup
+	wg.Add(1)
+	go func() {
+		defer wg.Done()
+		p.runHealth(ctx)
+	}()
 	for _, sh := range p.shards {
 		wg.Add(1)
 		go func() {
@@ -223,6 +240,9 @@ func (p *Pool) reject(subject, site string, size int, err error) {
 		reason = stream.ReasonMalformed
 	}
 	p.m.Rejects.WithLabelValues(string(reason)).Inc()
+	if h := p.health[site]; h != nil {
+		h.rejects.Add(1)
+	}
 	r := stream.Reject{Subject: subject, Site: site, Reason: string(reason), Detail: err.Error(), Bytes: size}
 	p.log.Debug("input rejected", zap.String("subject", subject), zap.String("reason", string(reason)), zap.Error(err))
 	if err := p.out.Reject(r); err != nil {
@@ -233,6 +253,8 @@ func (p *Pool) reject(subject, site string, size int, err error) {
 func (p *Pool) apply(sh *shard, it item) {
 	t0 := p.o.Clock()
 	a := sh.actors[it.site]
+	h := p.health[it.site]
+	h.inputs.Add(1)
 	applied := 0
 	switch it.kind {
 	case stream.InputWeather:
@@ -250,6 +272,9 @@ func (p *Pool) apply(sh *shard, it item) {
 		}
 		p.m.Inputs.WithLabelValues("weather").Add(float64(applied))
 		p.appliedWeather.Add(int64(applied))
+		if applied > 0 {
+			h.lastWeather.Store(t0.UnixNano())
+		}
 	case stream.InputMeter:
 		rs, err := p.dec.Meter(it.site, it.data)
 		if err != nil {
@@ -265,6 +290,9 @@ func (p *Pool) apply(sh *shard, it item) {
 		}
 		p.m.Inputs.WithLabelValues("meter").Add(float64(applied))
 		p.appliedMeter.Add(int64(applied))
+		if applied > 0 {
+			h.lastMeter.Store(t0.UnixNano())
+		}
 		p.m.Settled.Add(float64(applied))
 	}
 	left := p.queued[it.site].Add(-1)
