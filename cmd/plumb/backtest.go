@@ -234,6 +234,24 @@ func printSummary(w io.Writer, r *backtest.Report) {
 		}
 	}
 	tw.Flush()
+	for _, v := range r.Variants {
+		if v.Reference || len(v.Alarms) == 0 {
+			continue
+		}
+		byKind := map[string]int{}
+		var kinds []string
+		for _, a := range v.Alarms {
+			if byKind[a.Kind] == 0 {
+				kinds = append(kinds, a.Kind)
+			}
+			byKind[a.Kind] += a.Raised
+		}
+		fmt.Fprintf(w, "\nalarms raised by %s:", v.Name)
+		for _, k := range kinds {
+			fmt.Fprintf(w, " %s %d", k, byKind[k])
+		}
+		fmt.Fprintln(w)
+	}
 	if r.Refused > 0 {
 		fmt.Fprintf(w, "\n%d inputs were refused by the site actors (late, duplicate or too far ahead)\n", r.Refused)
 	}

@@ -61,6 +61,9 @@ type Variant struct {
 	// Weekly is the intraday coverage of each level per calendar week
 	// (weeks start on Monday, UTC).
 	Weekly []Period `json:"weekly"`
+	// Alarms counts the alarms the variant's actors raised while scored
+	// forecasts were issued, per site and kind.
+	Alarms []AlarmCount `json:"alarms"`
 	// Fan holds the day-ahead forecasts of one site over one week with the
 	// outcomes, for the fan chart (main variant only; nil otherwise).
 	Fan *Fan `json:"fan,omitempty"`
@@ -152,4 +155,12 @@ type FanRow struct {
 	Q           []float64 `json:"q"`
 	Observed    float64   `json:"observed"`
 	HasObserved bool      `json:"has_observed"`
+}
+
+// AlarmCount is how often one kind of alarm was raised for one site.
+type AlarmCount struct {
+	Site   string    `json:"site"`
+	Kind   string    `json:"kind"`
+	Raised int       `json:"raised"`
+	First  time.Time `json:"first_raised"`
 }

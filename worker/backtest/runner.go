@@ -92,6 +92,28 @@ type scorer struct {
 	fanTo    time.Time
 	fanRows  []FanRow
 	fanIndex map[int64]int
+	raised   map[string]*AlarmCount // by kind
+}
+
+// alarms counts the raised alarms among events at event time t.
+func (sc *scorer) alarms(evs []conformal.Event, t, from time.Time) {
+	if t.Before(from) {
+		return
+	}
+	for _, e := range evs {
+		if e.State != conformal.StateRaised {
+			continue
+		}
+		if sc.raised == nil {
+			sc.raised = map[string]*AlarmCount{}
+		}
+		c := sc.raised[e.Kind]
+		if c == nil {
+			c = &AlarmCount{Site: sc.site, Kind: e.Kind, First: e.EventTime}
+			sc.raised[e.Kind] = c
+		}
+		c.Raised++
+	}
 }
 
 type row struct {
@@ -263,6 +285,7 @@ func Run(ctx context.Context, h *history.History, o Options) (*Report, error) {
 			for _, site := range order {
 				for vi, a := range r.actors[site] {
 					b := a.Refresh()
+					r.scorers[site][vi].alarms(a.Events(), t, r.from)
 					if b == nil {
 						continue
 					}
@@ -441,6 +464,17 @@ func (r *runner) report(h *history.History) *Report {
 				p.Coverage[j] = float64(a.hits[j]) / float64(max(a.n, 1))
 			}
 			vr.Weekly = append(vr.Weekly, p)
+		}
+		for _, site := range rep.Sites {
+			sc := r.scorers[site][vi]
+			kinds := make([]string, 0, len(sc.raised))
+			for k := range sc.raised {
+				kinds = append(kinds, k)
+			}
+			slices.Sort(kinds)
+			for _, k := range kinds {
+				vr.Alarms = append(vr.Alarms, *sc.raised[k])
+			}
 		}
 		for _, sc := range r.scorers[r.fanSite][vi : vi+1] {
 			if sc.fan {
