@@ -29,8 +29,10 @@ type Calibrator interface {
 type Outcome struct {
 	// Y is the observed mean power (MW).
 	Y float64
-	// Issued is the calibrated quantile that was issued for the level (after
-	// the offset, before sorting and clipping). Y <= Issued is a hit.
+	// Issued is the quantile published for the level (after the offset,
+	// sorting and clipping; an outcome tied with a clipped quantile is
+	// judged by conformal.TieHit and Issued nudged below Y when it counts
+	// as a miss). Y <= Issued is a hit.
 	Issued float64
 	// PIT is the raw forecast's cumulative probability at Y (0..1),
 	// interpolated on its grid of levels; NaN when unknown.

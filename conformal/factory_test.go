@@ -19,6 +19,9 @@ func TestNew(t *testing.T) {
 		{"aci with gamma", Options{Method: "aci", Gamma: 0.05}, "aci", 0.05},
 		{"case and spaces ignored", Options{Method: " ACI "}, "aci", DefaultGamma},
 		{"none", Options{Method: "none", Gamma: 0.3}, "none", 0},
+		{"pid", Options{Method: "pid", Gamma: 0.3}, "pid", 0},
+		{"dtaci", Options{Method: "DtACI"}, "dtaci", 0},
+		{"split", Options{Method: "split"}, "split", 0},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -44,11 +47,15 @@ func TestNewErrors(t *testing.T) {
 		unknown bool
 		want    string
 	}{
-		{"unknown method", 0.5, Options{Method: "magic"}, true, `"magic" (known methods: aci, none)`},
+		{"unknown method", 0.5, Options{Method: "magic"}, true, `"magic" (known methods: aci, none, pid, dtaci, split)`},
 		{"level 0", 0, Options{}, false, "level 0 is outside (0, 1)"},
 		{"level above 1", 1.2, Options{Method: "none"}, false, "outside (0, 1)"},
 		{"negative gamma", 0.5, Options{Gamma: -1}, false, "gamma -1"},
 		{"NaN gamma", 0.5, Options{Gamma: math.NaN()}, false, "gamma NaN"},
+		{"level 1 for pid", 1, Options{Method: "pid"}, false, "level 1 is outside"},
+		{"pid negative LR", 0.5, Options{Method: "pid", Tracker: TrackerOptions{LR: -1}}, false, "pid lr -1"},
+		{"dtaci sigma 2", 0.5, Options{Method: "dtaci", DtACI: DtACIOptions{Sigma: 2}}, false, "dtaci sigma 2"},
+		{"split window -1", 0.5, Options{Method: "split", Split: SplitOptions{Window: -1}}, false, "split window -1"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -68,7 +75,7 @@ func TestNewErrors(t *testing.T) {
 
 func TestMethodsAreAllBuildable(t *testing.T) {
 	m := Methods()
-	if !slices.Equal(m, []string{"aci", "none"}) {
+	if !slices.Equal(m, []string{"aci", "none", "pid", "dtaci", "split"}) {
 		t.Errorf("Methods() = %v", m)
 	}
 	for _, name := range m {
@@ -110,4 +117,30 @@ func TestNone(t *testing.T) {
 		}
 	}()
 	NewNone(1)
+}
+
+// TestNewPassesOptions: each method gets its own options from New.
+func TestNewPassesOptions(t *testing.T) {
+	o := Options{
+		Tracker: TrackerOptions{LR: 0.02, Window: 30},
+		DtACI:   DtACIOptions{Experts: 3},
+		Split:   SplitOptions{Window: 40},
+	}
+	o.Method = "pid"
+	if c, err := New(0.9, o); err != nil || c.(*Tracker).Options().LR != 0.02 || c.(*Tracker).Options().Window != 30 {
+		t.Errorf("pid: %v %v", c, err)
+	}
+	o.Method = "dtaci"
+	if c, err := New(0.9, o); err != nil || len(c.(*DtACI).gammas) != 3 {
+		t.Errorf("dtaci: %v %v", c, err)
+	}
+	o.Method = "split"
+	if c, err := New(0.9, o); err != nil || c.(*Split).Window() != 40 {
+		t.Errorf("split: %v %v", c, err)
+	}
+	// Options stay comparable (no slices or maps): this map would not
+	// compile otherwise.
+	if m := map[Options]bool{o: true}; !m[o] {
+		t.Error("Options is not usable as a map key")
+	}
 }

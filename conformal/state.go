@@ -48,3 +48,26 @@ func (r *stateReader) float() float64 {
 	r.b = r.b[8:]
 	return v
 }
+
+// appendUint32 appends v little-endian.
+func appendUint32(b []byte, v uint32) []byte { return binary.LittleEndian.AppendUint32(b, v) }
+
+// appendUint64 appends v little-endian.
+func appendUint64(b []byte, v uint64) []byte { return binary.LittleEndian.AppendUint64(b, v) }
+
+// left returns the number of bytes not yet read.
+func (r *stateReader) left() int { return len(r.b) }
+
+// uint32 reads one little-endian uint32.
+func (r *stateReader) uint32() uint32 {
+	v := binary.LittleEndian.Uint32(r.b)
+	r.b = r.b[4:]
+	return v
+}
+
+// uint64 reads one little-endian uint64.
+func (r *stateReader) uint64() uint64 {
+	v := binary.LittleEndian.Uint64(r.b)
+	r.b = r.b[8:]
+	return v
+}
