@@ -14,6 +14,7 @@ import (
 
 	"github.com/schollz/progressbar/v3"
 
+	"github.com/plumb-forecast/plumb/conformal"
 	"github.com/plumb-forecast/plumb/model"
 	"github.com/plumb-forecast/plumb/stream"
 	"github.com/plumb-forecast/plumb/stream/history"
@@ -57,7 +58,7 @@ func runBacktest(ctx context.Context, args []string, stdout, stderr io.Writer) e
 		warmup      = fs.Int("warmup-days", 30, "unscored `days` at the start when --from is not given")
 		levelsArg   = fs.String("levels", "default", "quantile `levels`: 'default' (0.05..0.95), 'percentiles' (0.01..0.99, as GEFCom) or a list")
 		models      = fs.String("models", "baseline", "forecasters to run side by side, comma-separated: "+strings.Join(model.Names(), ", "))
-		calibrators = fs.String("calibrators", "aci", "calibrators to run with each model, comma-separated: aci, none")
+		calibrators = fs.String("calibrators", "aci", "calibrators to run with each model, comma-separated: "+strings.Join(conformal.Methods(), ", "))
 		gamma       = fs.Float64("gamma", 0.005, "step size of the aci calibrator")
 		hour        = fs.Int("day-ahead-hour", 0, "UTC `hour` of the forecasts in the day-ahead view")
 		costShort   = fs.Float64("cost-short", backtest.DefaultCostShort, "imbalance cost per MWh delivered short of the bid (default illustrative)")

@@ -59,7 +59,8 @@ func (w *workerFlags) register(fs *flag.FlagSet) {
 	fs.StringVar(&w.model, "model", "baseline", "forecaster: "+strings.Join(model.Names(), ", "))
 	fs.StringVar(&w.levels, "levels", "default", "quantile `levels`: 'default' (0.05..0.95 by 0.05), 'percentiles' (0.01..0.99) or a list such as 0.1,0.5,0.9")
 	fs.DurationVar(&w.horizon, "horizon", 0, "how far ahead a bundle reaches (0: to the end of the next UTC day, at least 36h)")
-	fs.StringVar(&w.calibrator, "calibrator", "aci", "online calibrator per lead bucket and level: aci (adaptive conformal inference) or none")
+	fs.StringVar(&w.calibrator, "calibrator", "aci", "online calibrator per lead bucket and level: "+strings.Join(conformal.Methods(), ", ")+
+		" (aci: adaptive conformal inference; pid: quantile tracker with integrator; dtaci: ACI with self-tuned step; split: rolling split conformal; none: the raw model)")
 	fs.Float64Var(&w.gamma, "gamma", 0.005, "step size of the aci calibrator")
 	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which live coverage is judged")
 	fs.Float64Var(&w.tolerance, "alarm-tolerance", 0.05, "raise a coverage alarm when live coverage is further than this from the level (and the Kupiec test rejects at 1 %)")
