@@ -79,8 +79,76 @@ type Baseline struct {
 	// Diurnal profile: running mean per-unit output per quarter-hour of the day.
 	profile, profileN [96]float64
 
-	pools []residualPool // [bucket*nClasses+class]
-	all   []residualPool // [bucket]: every class pooled
+	// Residuals per unit, as sortedRings with uint16 indices when the
+	// window allows (the usual case), else uint32; one pair is nil.
+	pools16, all16 []sortedRing[uint16] // [bucket*nClasses+class], [bucket]: every class pooled
+	pools32, all32 []sortedRing[uint32]
+
+	// gen counts the calls of Learn, the only method that changes the
+	// state above; the memos below hold for the gen they were made in.
+	gen  uint64
+	est  estimateMemo
+	memo [2]quantileMemo // the two latest answers of Quantiles
+	next int             // the entry of memo the next new answer goes to
+}
+
+// estimateMemo is the latest point estimate made from a weather driver
+// alone (the learned curve, or the PV rule of thumb): in the same gen, the
+// same driver gives the same estimate.
+type estimateMemo struct {
+	ok     bool
+	gen    uint64
+	driver uint64 // math.Float64bits of Features.Driver
+	e      float64
+}
+
+// quantileMemo is one answer of Quantiles kept for reuse. The quantiles
+// depend only on the levels, the point estimate, the lead bucket and the
+// available capacity, and on the state, so in the same gen the same inputs
+// (floats compared bit for bit) give the same answer. A refresh asks for the
+// same two grids of levels (nominal and calibrated) step after step, and the
+// weather driver changes only every few steps, so most calls are answered
+// from here.
+type quantileMemo struct {
+	ok        bool
+	gen       uint64
+	bucket    int
+	e, capMW  uint64 // math.Float64bits
+	levels, q []float64
+}
+
+// lookup returns the memo entry answering the call, or nil.
+func (b *Baseline) lookup(bucket int, e, capMW float64, levels []float64) *quantileMemo {
+	for k := range b.memo {
+		m := &b.memo[k]
+		if !m.ok || m.gen != b.gen || m.bucket != bucket || m.e != math.Float64bits(e) ||
+			m.capMW != math.Float64bits(capMW) || len(m.levels) != len(levels) {
+			continue
+		}
+		same := true
+		ml := m.levels[:len(levels)]
+		for j, l := range levels {
+			if math.Float64bits(l) != math.Float64bits(ml[j]) {
+				same = false
+				break
+			}
+		}
+		if same {
+			b.next = 1 - k // keep this entry, replace the other next
+			return m
+		}
+	}
+	return nil
+}
+
+// remember keeps an answer of Quantiles in the memo.
+func (b *Baseline) remember(bucket int, e, capMW float64, levels, q []float64) {
+	m := &b.memo[b.next]
+	b.next = 1 - b.next
+	m.ok, m.gen, m.bucket = true, b.gen, bucket
+	m.e, m.capMW = math.Float64bits(e), math.Float64bits(capMW)
+	m.levels = append(m.levels[:0], levels...)
+	m.q = append(m.q[:0], q...)
 }
 
 // NewBaseline returns a Baseline for a site of the given kind.
@@ -97,15 +165,26 @@ func NewBaseline(kind Kind, o BaselineOptions) *Baseline {
 	}
 	b.binN = make([]float64, len(b.binMean))
 	nb := o.Buckets.Len()
-	b.pools = make([]residualPool, nb*nClasses)
-	b.all = make([]residualPool, nb)
-	for i := range b.pools {
-		b.pools[i] = newResidualPool(o.Window)
-	}
-	for i := range b.all {
-		b.all[i] = newResidualPool(o.Window)
+	if o.Window <= maxRing16 {
+		b.pools16, b.all16 = newRings[uint16](nb, o.Window)
+	} else {
+		b.pools32, b.all32 = newRings[uint32](nb, o.Window)
 	}
 	return b
+}
+
+// newRings returns the per-class and the pooled residual windows of nb
+// lead buckets.
+func newRings[I ringIndex](nb, window int) (pools, all []sortedRing[I]) {
+	pools = make([]sortedRing[I], nb*nClasses)
+	all = make([]sortedRing[I], nb)
+	for i := range pools {
+		pools[i] = newSortedRing[I](window)
+	}
+	for i := range all {
+		all[i] = newSortedRing[I](window)
+	}
+	return pools, all
 }
 
 // Name implements Forecaster.
@@ -114,11 +193,17 @@ func (b *Baseline) Name() string { return "baseline" }
 // estimate returns the point estimate in per-unit of available capacity.
 func (b *Baseline) estimate(x *Features) float64 {
 	if !math.IsNaN(x.Driver) {
-		if e, ok := b.curve(x.Driver); ok {
-			return e
+		d := math.Float64bits(x.Driver)
+		if b.est.ok && b.est.gen == b.gen && b.est.driver == d {
+			return b.est.e
 		}
-		if b.kind == KindPV {
-			return math.Min(1, math.Max(0, x.Driver/1000*0.8))
+		e, ok := b.curve(x.Driver)
+		if !ok && b.kind == KindPV {
+			e, ok = min(1, max(0, x.Driver/1000*0.8)), true
+		}
+		if ok {
+			b.est = estimateMemo{ok: true, gen: b.gen, driver: d, e: e}
+			return e
 		}
 	}
 	// No weather driver: persistence for the next hour, then the site's
@@ -184,7 +269,7 @@ func (b *Baseline) curve(d float64) (float64, bool) {
 		return b.binMean[lo], i-lo <= 4
 	}
 	w := (pos - float64(lo)) / float64(hi-lo)
-	w = math.Max(0, math.Min(1, w))
+	w = max(0, min(1, w)) // the built-ins treat NaN and signed zeros as math.Max and math.Min do
 	return b.binMean[lo]*(1-w) + b.binMean[hi]*w, true
 }
 
@@ -195,18 +280,37 @@ func (b *Baseline) Quantiles(dst []float64, x *Features, levels []float64) {
 	}
 	capMW := avail(x)
 	e := b.estimate(x)
-	bucket := min(max(x.Bucket, 0), len(b.all)-1)
-	pool := &b.pools[bucket*nClasses+classOf(e)]
-	if pool.len() < b.o.MinResiduals {
-		pool = &b.all[bucket]
+	bucket := min(max(x.Bucket, 0), b.o.Buckets.Len()-1)
+	if m := b.lookup(bucket, e, capMW, levels); m != nil {
+		copy(dst, m.q)
+		return
 	}
+	if b.pools16 != nil {
+		quantilesFrom(dst, levels, b.pools16, b.all16, bucket, b.o.MinResiduals, e, capMW)
+	} else {
+		quantilesFrom(dst, levels, b.pools32, b.all32, bucket, b.o.MinResiduals, e, capMW)
+	}
+	b.remember(bucket, e, capMW, levels, dst)
+}
+
+// quantilesFrom writes the quantiles at levels of the point estimate e (per
+// unit) plus the residuals of the bucket's pool of e's class, or of the
+// bucket's pooled residuals when the class has fewer than minRes, or, with
+// fewer there too, of a uniform spread over [0, capMW].
+func quantilesFrom[I ringIndex](dst, levels []float64, pools, all []sortedRing[I], bucket, minRes int, e, capMW float64) {
+	pool := &pools[bucket*nClasses+classOf(e)]
+	if pool.len() < minRes {
+		pool = &all[bucket]
+	}
+	warm := pool.len() >= minRes
+	dst = dst[:len(levels)]
 	for j, l := range levels {
 		switch {
 		case l <= 0:
 			dst[j] = math.Inf(-1)
 		case l >= 1:
 			dst[j] = math.Inf(1)
-		case pool.len() < b.o.MinResiduals:
+		case !warm:
 			dst[j] = l * capMW // know nothing yet: uniform over [0, capacity]
 		default:
 			dst[j] = (e + pool.quantile(l)) * capMW
@@ -218,6 +322,9 @@ func (b *Baseline) Quantiles(dst []float64, x *Features, levels []float64) {
 // its lead bucket's pools; the curve and the mean learn once, from the
 // shortest-lead forecast.
 func (b *Baseline) Learn(y float64, xs []*Features) {
+	// Whatever follows changes the state: the memos made before, or made
+	// here before the curve learns, are stale once Learn returns.
+	defer func() { b.gen++ }()
 	if len(xs) == 0 || math.IsNaN(y) {
 		return
 	}
@@ -228,9 +335,15 @@ func (b *Baseline) Learn(y float64, xs []*Features) {
 		}
 		pu := y / capMW
 		e := b.estimate(x)
-		bucket := min(max(x.Bucket, 0), len(b.all)-1)
-		b.pools[bucket*nClasses+classOf(e)].add(pu - e)
-		b.all[bucket].add(pu - e)
+		bucket := min(max(x.Bucket, 0), b.o.Buckets.Len()-1)
+		k := bucket*nClasses + classOf(e)
+		if b.pools16 != nil {
+			b.pools16[k].add(pu - e)
+			b.all16[bucket].add(pu - e)
+		} else {
+			b.pools32[k].add(pu - e)
+			b.all32[bucket].add(pu - e)
+		}
 	}
 	x := xs[0]
 	capMW := avail(x)

@@ -63,3 +63,86 @@ func (p *residualPool) dropOldest() {
 		p.head = 0
 	}
 }
+
+// ringIndex is the type of a ring index in a sortedRing's order.
+type ringIndex interface{ ~uint16 | ~uint32 }
+
+// maxRing16 is the largest window a sortedRing[uint16] holds.
+const maxRing16 = 1 << 16
+
+// sortedRing is the window of residualPool kept more compactly: the values
+// in arrival order (a ring) and, instead of a sorted copy of them, their
+// ring indices in increasing order of value. With uint16 indices a value
+// takes 10 bytes instead of 16. Its quantile is residualPool's, the same
+// float for the same values: the values read are the same, in the same
+// order. (Which of equal values an order position points to can differ,
+// so a zero can come out with the other sign; no caller tells them apart.)
+type sortedRing[I ringIndex] struct {
+	ring  []float64 // arrival order; the oldest is ring[head]
+	head  int
+	order []I // ring indices of the values held, by increasing value
+}
+
+func newSortedRing[I ringIndex](n int) sortedRing[I] {
+	return sortedRing[I]{ring: make([]float64, n), order: make([]I, 0, n)}
+}
+
+func (p *sortedRing[I]) len() int { return len(p.order) }
+
+// quantile is residualPool.quantile: type 7 of Hyndman and Fan (1996). The
+// ring must not be empty.
+func (p *sortedRing[I]) quantile(l float64) float64 {
+	n := len(p.order)
+	h := l * float64(n-1)
+	i := int(h)
+	if i >= n-1 {
+		return p.ring[p.order[n-1]]
+	}
+	lo, hi := p.ring[p.order[i]], p.ring[p.order[i+1]]
+	return lo + (h-float64(i))*(hi-lo)
+}
+
+// search returns the first position in order whose value is at or above v
+// (sort.SearchFloat64s on the sorted values).
+func (p *sortedRing[I]) search(v float64) int {
+	lo, hi := 0, len(p.order)
+	for lo < hi {
+		m := int(uint(lo+hi) >> 1)
+		if p.ring[p.order[m]] >= v {
+			hi = m
+		} else {
+			lo = m + 1
+		}
+	}
+	return lo
+}
+
+// add appends r (which must not be NaN), dropping the oldest value first if
+// the ring is full.
+func (p *sortedRing[I]) add(r float64) {
+	if len(p.order) == len(p.ring) {
+		p.dropOldest()
+	}
+	at := (p.head + len(p.order)) % len(p.ring)
+	p.ring[at] = r
+	i := p.search(r)
+	p.order = append(p.order, 0)
+	copy(p.order[i+1:], p.order[i:])
+	p.order[i] = I(at)
+}
+
+// dropOldest removes the oldest value; the ring must not be empty.
+func (p *sortedRing[I]) dropOldest() {
+	// Values equal to the oldest sit together from search(old) on; one of
+	// them is the oldest itself.
+	i := p.search(p.ring[p.head])
+	for p.order[i] != I(p.head) {
+		i++
+	}
+	copy(p.order[i:], p.order[i+1:])
+	p.order = p.order[:len(p.order)-1]
+	p.head++
+	if p.head == len(p.ring) {
+		p.head = 0
+	}
+}

@@ -141,6 +141,26 @@ func BundleSchema(b *model.Bundle) *arrow.Schema {
 // the next, so a long-lived encoder allocates little. The zero value is not
 // usable: call NewBundleEncoder. A BundleEncoder is not safe for concurrent
 // use; give each goroutine its own.
+//
+// # Fast path
+//
+// The Arrow IPC writer rebuilds the schema and record batch flatbuffers of
+// every stream, a few hundred small allocations. Yet for a given set of
+// levels the bytes of the schema message depend only on the lengths of the
+// metadata values (a flatbuffer's layout follows the sizes of what it holds,
+// never their content), and those of the record batch header only on the
+// number of rows and the length of the site id. So the first bundle of each
+// shape is written by the Arrow writer, and the encoder cuts from its bytes a
+// template of each message: the schema message with the places of its five
+// varying metadata values, the record batch header with the places of its
+// buffers in the body. A later bundle of the same shape is written from the
+// templates: the schema message copied with the metadata values put in place,
+// the header copied, the column values written where the header says, then
+// the end-of-stream marker. A template is used only if writing the very
+// bundle it was cut from reproduces the Arrow writer's bytes exactly;
+// otherwise that shape always goes through the Arrow writer. Either way the
+// same bundle gives the same bytes (TestEncoderFastPathMatchesArrow checks
+// the two paths against each other).
 type BundleEncoder struct {
 	mem memory.Allocator
 
@@ -154,17 +174,69 @@ type BundleEncoder struct {
 	offs []int32
 	str  []byte
 	cols []arrow.Array
+
+	// Message templates of the fast path, by shape; cleared when the levels
+	// change.
+	schemas map[schemaShape]*schemaTemplate
+	batches map[batchShape]*batchTemplate
+	times   []byte   // scratch: watermark and weather issue time as text
+	cols8   [][]byte // scratch: the quantile columns of a body
 }
+
+// schemaShape is what the bytes of a schema message depend on besides the
+// levels: the lengths of the metadata values that vary from bundle to bundle.
+type schemaShape struct {
+	site, model, calibrator, watermark, weather int
+}
+
+// batchShape is what the bytes of a record batch header, and the layout of
+// its body, depend on besides the levels.
+type batchShape struct {
+	rows, site int
+}
+
+// schemaTemplate is a framed schema message (continuation marker, length,
+// flatbuffer, padding) and the positions in it of the metadata values site,
+// model, calibrator, watermark and weather issue time.
+type schemaTemplate struct {
+	msg []byte
+	at  [5]int
+	ok  bool // writing from the template reproduced the Arrow writer's bytes
+}
+
+// batchTemplate is a framed record batch header and the places of the
+// buffers in the body that follows it, in the order of the header.
+type batchTemplate struct {
+	head []byte
+	bufs []bodySpan
+	body int // body length
+	ok   bool
+}
+
+type bodySpan struct{ off, len int }
+
+// maxTemplates bounds each template map; past it the map starts afresh.
+const maxTemplates = 64
+
+// ipcEOS is the end-of-stream marker of the Arrow IPC stream format.
+var ipcEOS = [8]byte{0xFF, 0xFF, 0xFF, 0xFF, 0, 0, 0, 0}
 
 // NewBundleEncoder returns an encoder that allocates through Go's garbage
 // collector.
 func NewBundleEncoder() *BundleEncoder {
-	return &BundleEncoder{mem: memory.NewGoAllocator()}
+	return &BundleEncoder{
+		mem:     memory.NewGoAllocator(),
+		schemas: make(map[schemaShape]*schemaTemplate),
+		batches: make(map[batchShape]*batchTemplate),
+	}
 }
 
 // Encode appends to dst the Arrow IPC stream of b. The same bundle always
 // gives the same bytes. Times are written with millisecond precision in the
 // columns (finer parts are dropped) and exactly in the schema metadata.
+// Once the encoder has seen a bundle of the same shape (levels, number of
+// steps, lengths of the site id, model and calibrator names and times), it
+// does not allocate beyond growing dst.
 //
 // b must be consistent: a valid site id, at least one level, levels
 // strictly increasing inside (0, 1), len(b.Q) == len(b.Steps)*len(b.Levels),
@@ -181,7 +253,33 @@ func (e *BundleEncoder) Encode(dst *bytes.Buffer, b *model.Bundle) error {
 	if !slices.Equal(e.levels, b.Levels) {
 		e.levels = append(e.levels[:0], b.Levels...)
 		e.fields = bundleFields(e.levels)
+		clear(e.schemas)
+		clear(e.batches)
 	}
+	e.times = appendTime(e.times[:0], b.Watermark)
+	nw := len(e.times)
+	e.times = appendTime(e.times, b.WeatherIssuedAt)
+	wm, wi := e.times[:nw], e.times[nw:]
+	ss := schemaShape{len(b.Site), len(b.Model), len(b.Calibrator), len(wm), len(wi)}
+	bs := batchShape{rows: len(b.Steps), site: len(b.Site)}
+	st, bt := e.schemas[ss], e.batches[bs]
+	if st != nil && bt != nil {
+		if st.ok && bt.ok {
+			e.writeFromTemplates(dst, b, st, bt, wm, wi)
+			return nil
+		}
+		return e.encodeArrow(dst, b)
+	}
+	mark := dst.Len()
+	if err := e.encodeArrow(dst, b); err != nil {
+		return err
+	}
+	e.learnTemplates(dst.Bytes()[mark:], b, ss, bs, st, bt, wm, wi)
+	return nil
+}
+
+// encodeArrow appends the stream of b made by the Arrow IPC writer.
+func (e *BundleEncoder) encodeArrow(dst *bytes.Buffer, b *model.Bundle) error {
 	md := bundleMetadata(b)
 	schema := arrow.NewSchema(e.fields, &md)
 
@@ -198,6 +296,272 @@ func (e *BundleEncoder) Encode(dst *bytes.Buffer, b *model.Bundle) error {
 		return fmt.Errorf("stream: encode bundle: %w", err)
 	}
 	return nil
+}
+
+// appendTime appends t in RFC 3339 in UTC, or nothing for the zero time
+// (formatTime's text).
+func appendTime(dst []byte, t time.Time) []byte {
+	if t.IsZero() {
+		return dst
+	}
+	return t.UTC().AppendFormat(dst, time.RFC3339Nano)
+}
+
+// learnTemplates cuts the missing templates of b's shapes from data, the
+// stream of b the Arrow writer made, and keeps them; a template is marked
+// usable only if writing b from the templates gives data again.
+func (e *BundleEncoder) learnTemplates(data []byte, b *model.Bundle, ss schemaShape, bs batchShape, st *schemaTemplate, bt *batchTemplate, wm, wi []byte) {
+	newST, newBT := st == nil, bt == nil
+	var err error
+	if newST {
+		st, err = cutSchemaTemplate(data, [5]string{b.Site, b.Model, b.Calibrator, string(wm), string(wi)})
+		if err != nil {
+			st = &schemaTemplate{}
+		}
+		if len(e.schemas) >= maxTemplates {
+			clear(e.schemas)
+		}
+		e.schemas[ss] = st
+	}
+	if newBT {
+		bt, err = cutBatchTemplate(data, len(b.Levels), len(b.Steps), len(b.Site))
+		if err != nil {
+			bt = &batchTemplate{}
+		}
+		if len(e.batches) >= maxTemplates {
+			clear(e.batches)
+		}
+		e.batches[bs] = bt
+	}
+	if st.msg == nil || bt.head == nil || (!newST && !st.ok) || (!newBT && !bt.ok) {
+		return
+	}
+	// Self-check: the templates must give the Arrow writer's bytes.
+	var again bytes.Buffer
+	wasST, wasBT := st.ok, bt.ok
+	st.ok, bt.ok = true, true
+	e.writeFromTemplates(&again, b, st, bt, wm, wi)
+	same := bytes.Equal(again.Bytes(), data)
+	st.ok, bt.ok = wasST || (newST && same), wasBT || (newBT && same)
+}
+
+// cutSchemaTemplate takes the schema message, the first of the stream data,
+// and finds in it the metadata values vals (site, model, calibrator,
+// watermark, weather issue time), which follow the schema version.
+func cutSchemaTemplate(data []byte, vals [5]string) (*schemaTemplate, error) {
+	msg, fb, err := ipcMessage(data)
+	if err != nil {
+		return nil, err
+	}
+	m, err := fb.table(rootOf(fb))
+	if err != nil {
+		return nil, err
+	}
+	h, ok, err := m.sub(2) // header: the Schema table
+	if err != nil || !ok {
+		return nil, errors.Join(err, errors.New("no schema header"))
+	}
+	var at []int
+	if _, err := h.tables(2, func(kv fbTable) error { // custom_metadata
+		start, n, err := kv.vector(1, 1) // value
+		if err != nil {
+			return err
+		}
+		at = append(at, 8+start, n)
+		return nil
+	}); err != nil {
+		return nil, err
+	}
+	if len(at) != 2*6 {
+		return nil, fmt.Errorf("%d schema metadata values, want 6", len(at)/2)
+	}
+	t := &schemaTemplate{msg: slices.Clone(msg)}
+	for k, v := range vals {
+		p, n := at[2*(k+1)], at[2*(k+1)+1]
+		if n != len(v) || string(msg[p:p+n]) != v {
+			return nil, errors.New("schema metadata value not where expected")
+		}
+		t.at[k] = p
+	}
+	return t, nil
+}
+
+// cutBatchTemplate takes the record batch message, the second of the
+// stream data, and checks that its body has the buffers a bundle of nl
+// levels, rows rows and a site id of siteLen bytes fills.
+func cutBatchTemplate(data []byte, nl, rows, siteLen int) (*batchTemplate, error) {
+	schema, _, err := ipcMessage(data)
+	if err != nil {
+		return nil, err
+	}
+	p := len(schema)
+	head, fb, err := ipcMessage(data[p:])
+	if err != nil {
+		return nil, err
+	}
+	m, err := fb.table(rootOf(fb))
+	if err != nil {
+		return nil, err
+	}
+	body, err := m.i64(3)
+	if err != nil {
+		return nil, err
+	}
+	h, ok, err := m.sub(2) // header: the RecordBatch table
+	if err != nil || !ok {
+		return nil, errors.Join(err, errors.New("no record batch header"))
+	}
+	start, n, err := h.vector(2, 16) // buffers: offset, length
+	if err != nil {
+		return nil, err
+	}
+	want := bodyLens(nl, rows, siteLen)
+	if n != len(want) || body < 0 || int64(p+len(head))+body+int64(len(ipcEOS)) != int64(len(data)) {
+		return nil, errors.New("unexpected record batch layout")
+	}
+	t := &batchTemplate{head: slices.Clone(head), bufs: make([]bodySpan, n), body: int(body)}
+	end := 0
+	for k := range n {
+		off, _ := fb.i64(start + 16*k)
+		l, _ := fb.i64(start + 16*k + 8)
+		if l != int64(want[k]) || off < int64(end) || off+l > body {
+			return nil, errors.New("unexpected record batch buffer")
+		}
+		t.bufs[k] = bodySpan{off: int(off), len: int(l)}
+		end = int(off + l)
+	}
+	return t, nil
+}
+
+// bodyLens returns the lengths of the body buffers of a bundle, in the
+// order of the Arrow format: per column its validity bitmap (empty: no
+// nulls), then its offsets and values (site) or its values.
+func bodyLens(nl, rows, siteLen int) []int {
+	lens := []int{0, 4 * (rows + 1), rows * siteLen} // site
+	for range 2 {                                    // issued_at, valid_start
+		lens = append(lens, 0, 8*rows)
+	}
+	for range 2 { // valid_minutes, lead_minutes
+		lens = append(lens, 0, 4*rows)
+	}
+	for range nl + nTrail {
+		lens = append(lens, 0, 8*rows)
+	}
+	return lens
+}
+
+// ipcMessage returns the framed metadata of the message at the start of
+// data (continuation marker, length, flatbuffer and padding) and its
+// flatbuffer.
+func ipcMessage(data []byte) (framed []byte, fb fbuf, err error) {
+	if len(data) < 8 || binary.LittleEndian.Uint32(data) != 0xFFFFFFFF {
+		return nil, nil, errors.New("no IPC message")
+	}
+	n := int(int32(binary.LittleEndian.Uint32(data[4:])))
+	if n <= 0 || n > len(data)-8 {
+		return nil, nil, errors.New("bad IPC message length")
+	}
+	return data[:8+n], fbuf(data[8 : 8+n]), nil
+}
+
+// rootOf returns the position of a flatbuffer's root table (-1 if none).
+func rootOf(fb fbuf) int {
+	r, err := fb.u32(0)
+	if err != nil {
+		return -1
+	}
+	return r
+}
+
+// writeFromTemplates appends b's stream, made from its shapes' templates.
+func (e *BundleEncoder) writeFromTemplates(dst *bytes.Buffer, b *model.Bundle, st *schemaTemplate, bt *batchTemplate, wm, wi []byte) {
+	total := len(st.msg) + len(bt.head) + bt.body + len(ipcEOS)
+	dst.Grow(total)
+	out := dst.AvailableBuffer()[:total]
+	p := copy(out, st.msg)
+	copy(out[st.at[0]:], b.Site)
+	copy(out[st.at[1]:], b.Model)
+	copy(out[st.at[2]:], b.Calibrator)
+	copy(out[st.at[3]:], wm)
+	copy(out[st.at[4]:], wi)
+	p += copy(out[p:], bt.head)
+	e.cols8 = fillBody(out[p:p+bt.body], bt.bufs, b, e.cols8)
+	copy(out[p+bt.body:], ipcEOS[:])
+	dst.Write(out)
+}
+
+// fillBody writes b's columns into body at the places spans gives (the
+// order of bodyLens), and zeroes the padding between them; cols is scratch,
+// returned for reuse.
+func fillBody(body []byte, spans []bodySpan, b *model.Bundle, cols [][]byte) [][]byte {
+	n, nl := len(b.Steps), len(b.Levels)
+	le := binary.LittleEndian
+	region := func(k int) []byte {
+		s := spans[k]
+		next := len(body)
+		if k+1 < len(spans) {
+			next = spans[k+1].off
+		}
+		clear(body[s.off+s.len : next])
+		return body[s.off : s.off+s.len]
+	}
+	// The validity bitmaps are empty; only their padding (none) is cleared.
+	region(0)
+	if offs := region(1); len(offs) > 0 {
+		for i := range n + 1 {
+			le.PutUint32(offs[4*i:], uint32(i*len(b.Site)))
+		}
+	}
+	str := region(2)
+	for i := range n {
+		copy(str[i*len(b.Site):], b.Site)
+	}
+	region(3)
+	issued, iss := region(4), uint64(b.IssuedAt.UnixMilli())
+	for i := range n {
+		le.PutUint64(issued[8*i:], iss)
+	}
+	region(5)
+	starts := region(6)
+	for i, s := range b.Steps {
+		le.PutUint64(starts[8*i:], uint64(s.ValidStart.UnixMilli()))
+	}
+	region(7)
+	valid := region(8)
+	region(9)
+	lead := region(10)
+	for i, s := range b.Steps {
+		le.PutUint32(valid[4*i:], uint32(int32(s.ValidMinutes)))
+		le.PutUint32(lead[4*i:], uint32(int32(s.LeadMinutes)))
+	}
+	k := 11
+	// The quantile columns: Q transposed, read row after row.
+	cols = cols[:0]
+	for range nl {
+		region(k)
+		cols = append(cols, region(k + 1)[:8*n])
+		k += 2
+	}
+	for i := range n {
+		row := b.Q[i*nl : (i+1)*nl]
+		for j, v := range row {
+			le.PutUint64(cols[j][8*i:], math.Float64bits(v))
+		}
+	}
+	region(k)
+	expected := region(k + 1)[:8*n]
+	for i, v := range b.Expected {
+		le.PutUint64(expected[8*i:], math.Float64bits(v))
+	}
+	for _, v := range [...]float64{b.CapacityMW, b.Availability} {
+		k += 2
+		region(k)
+		col := region(k + 1)[:8*n]
+		for i := range n {
+			le.PutUint64(col[8*i:], math.Float64bits(v))
+		}
+	}
+	return cols
 }
 
 // record lays b out in the encoder's scratch buffers and returns a record

@@ -16,6 +16,7 @@ import (
 	"fmt"
 	"hash/fnv"
 	"math"
+	"slices"
 	"sort"
 	"time"
 
@@ -113,17 +114,44 @@ type run struct {
 	driver, u, v int
 }
 
-// pending is one issued forecast awaiting its outcome: the latest one issued
-// for a target interval in a lead bucket.
-type pending struct {
-	x   model.Features
-	raw []float64 // raw quantiles at the nominal levels
-	cal []float64 // calibrated quantiles, before sorting and clipping
+// runCursor is where a refresh stands in a run's rows: how many start at or
+// before the current step, and the end of the last of them.
+type runCursor struct {
+	rows int
+	end  time.Time
+	age  float64 // now.Sub(IssuedAt).Minutes(), NaN until computed
 }
 
+// A pending forecast is one issued forecast awaiting its outcome: the
+// latest one issued for a target interval in a lead bucket. Settlement
+// needs its features (for the forecaster to learn from, and the night
+// flag), its raw quantiles at the nominal levels (for the raw coverage) and
+// its published quantiles (for the calibrators and the coverage). They are
+// kept in the actor's record store, by record number: the features in
+// pendingX, the quantiles side by side in a float64 slab, which holds no
+// pointer and pays no allocation header per record.
+
+// pendingX is what settlement needs of a pending forecast's features beyond
+// what its target and lead bucket tell: ValidMinutes is the target's
+// minutes, Bucket the bucket, CapacityMW the site's, HourUTC follows from
+// ValidStart and ValidMinutes (see expand).
+type pendingX struct {
+	validStart                       time.Time
+	lead                             int
+	avail, driver, runAge, lastPower float64
+	night                            bool
+}
+
+// recChunk is how many pending records a chunk of the record store holds.
+const recChunk = 32
+
+// noRec marks a lead bucket without a pending forecast in a target.
+const noRec = -1
+
+// target holds the pending forecasts of one interval, by lead bucket.
 type target struct {
-	minutes  int
-	byBucket []*pending
+	minutes int
+	rec     []int32 // record number by lead bucket, or noRec
 }
 
 // cell holds the calibration and coverage state of one (lead bucket, level).
@@ -153,19 +181,44 @@ type Actor struct {
 	availability float64
 	stepMinutes  int
 
-	seen    map[int64]struct{} // interval starts (unix minutes) already applied
-	night   map[int64]bool     // PV: is the interval starting then at night (a cache)
-	pending map[int64]*target  // by target interval start (unix minutes)
-	free    []*pending
+	// By interval start (unix minutes), sorted:
+	seen    keyed[struct{}] // intervals already applied
+	night   keyed[bool]     // PV: is the interval at night (a cache)
+	pending keyed[*target]  // forecasts awaiting their outcome
+	freeT   []*target       // targets no longer pending
+
+	// The pending records, by record number r: recX[r/recChunk][r%recChunk],
+	// and the raw then the published quantiles at recQ[r/recChunk], from
+	// (r%recChunk)*2*len(levels).
+	recX    [][]pendingX
+	recQ    [][]float64
+	nrec    int32   // records made
+	freeRec []int32 // records no longer in use
 
 	cells  []cell // [bucket*len(levels)+level]
 	events []conformal.Event
 
 	siteHash uint64 // seeds tieBreak
 
+	// bundle is what Refresh returns, its slices reused from call to call
+	// (left empty if only RefreshInto is used).
+	bundle model.Bundle
+
+	// Calibrators' adjustments, asked once per lead bucket per refresh:
+	// adjLevel and adjOffset [bucket*len(levels)+level] are valid for bucket
+	// when adjGen[bucket] == gen.
+	adjLevel, adjOffset []float64
+	adjGen              []uint64
+	adjZero             []bool // every offset of the bucket is zero
+	gen                 uint64
+
 	// scratch
-	adj, tmp, pub []float64
-	learn         []*model.Features
+	cursor  []runCursor      // per kept run (Refresh)
+	nightAt int              // index in night of the next step's key (Refresh)
+	pendAt  int              // index in pending of the next step's key (Refresh)
+	x       model.Features   // the step's features (Refresh); a field, as &x escapes
+	learnX  []model.Features // by lead bucket: the features settle hands to Learn
+	learn   []*model.Features
 }
 
 // NewActor returns an actor for site; cfg must already have its defaults
@@ -177,9 +230,6 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 		fc:           cfg.NewForecaster(site),
 		lastPower:    math.NaN(),
 		availability: 1,
-		seen:         make(map[int64]struct{}),
-		night:        make(map[int64]bool),
-		pending:      make(map[int64]*target),
 	}
 	nl := len(cfg.Levels)
 	a.cells = make([]cell, cfg.Buckets.Len()*nl)
@@ -198,9 +248,12 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 	h := fnv.New64a()
 	h.Write([]byte(site.ID))
 	a.siteHash = h.Sum64()
-	a.adj = make([]float64, nl)
-	a.tmp = make([]float64, nl)
-	a.pub = make([]float64, nl)
+	a.adjLevel = make([]float64, len(a.cells))
+	a.adjOffset = make([]float64, len(a.cells))
+	a.adjGen = make([]uint64, cfg.Buckets.Len())
+	a.adjZero = make([]bool, cfg.Buckets.Len())
+	a.cursor = make([]runCursor, 0, cfg.KeepRuns+1)
+	a.learnX = make([]model.Features, cfg.Buckets.Len())
 	return a, nil
 }
 
@@ -242,8 +295,12 @@ func (a *Actor) Weather(w *model.WeatherRun) error {
 	a.runs = append(a.runs, run{})
 	copy(a.runs[i+1:], a.runs[i:])
 	a.runs[i] = r
-	if len(a.runs) > a.cfg.KeepRuns {
-		a.runs = a.runs[len(a.runs)-a.cfg.KeepRuns:]
+	if drop := len(a.runs) - a.cfg.KeepRuns; drop > 0 {
+		// Shift down rather than reslice, so the slice keeps its room and
+		// the next append does not allocate.
+		n := copy(a.runs, a.runs[drop:])
+		clear(a.runs[n:])
+		a.runs = a.runs[:n]
 	}
 	if a.stepMinutes == 0 && a.cfg.StepMinutes == 0 && len(w.Rows) > 0 {
 		a.stepMinutes = w.Rows[0].ValidMinutes
@@ -267,10 +324,11 @@ func (a *Actor) Meter(r *model.Reading) error {
 		}
 	}
 	key := unixMin(r.IntervalStart)
-	if _, dup := a.seen[key]; dup {
+	si, dup := a.seen.find(key)
+	if dup {
 		return fmt.Errorf("%w: interval %s already applied", ErrDuplicate, r.IntervalStart.Format(time.RFC3339))
 	}
-	a.seen[key] = struct{}{}
+	a.seen.insert(si, key, struct{}{})
 	if a.site.Kind == model.KindPV && !math.IsNaN(r.PowerMW) {
 		if a.firstMeter.IsZero() {
 			a.firstMeter = r.IntervalStart
@@ -290,9 +348,11 @@ func (a *Actor) Meter(r *model.Reading) error {
 			a.stepMinutes = r.IntervalMinutes
 		}
 	}
-	if t, ok := a.pending[key]; ok && t.minutes == r.IntervalMinutes {
+	if i, ok := a.pending.find(key); ok && a.pending.vals[i].minutes == r.IntervalMinutes {
+		t := a.pending.vals[i]
 		a.settle(t, r, end)
-		delete(a.pending, key)
+		a.pending.remove(i)
+		a.freeT = append(a.freeT, t)
 	}
 	a.advance(end)
 	return nil
@@ -306,31 +366,136 @@ func (a *Actor) advance(t time.Time) {
 	}
 	a.now = t
 	horizon := unixMin(a.now.Add(-a.cfg.Lateness))
-	for k, tg := range a.pending {
-		if k+int64(tg.minutes) < horizon {
-			a.release(tg)
-			delete(a.pending, k)
+	// Only a target starting before the horizon can end before it.
+	a.pending.dropFront(horizon, func(k int64, tg *target) bool {
+		if k+int64(tg.minutes) >= horizon {
+			return false
+		}
+		a.release(tg)
+		a.freeT = append(a.freeT, tg)
+		return true
+	})
+	a.seen.dropFront(horizon-24*60, nil)
+	a.night.dropFront(horizon, nil)
+}
+
+// keyed holds values sorted by an int64 key, an interval start in unix
+// minutes. Keys come mostly in increasing order and leave mostly from the
+// front, so two slices serve better than a map: a lookup is a binary
+// search, a refresh walks its steps with a cursor, pruning looks at the
+// front only, and nothing is allocated once the slices have grown.
+type keyed[V any] struct {
+	keys []int64
+	vals []V
+}
+
+// find returns the index of key k, or where it would go, and whether it
+// is there.
+func (s *keyed[V]) find(k int64) (int, bool) {
+	return slices.BinarySearch(s.keys, k)
+}
+
+// seek is find for a key known to be at or after index from: a walk, for
+// keys visited in increasing order.
+func (s *keyed[V]) seek(from int, k int64) (int, bool) {
+	i := from
+	for i < len(s.keys) && s.keys[i] < k {
+		i++
+	}
+	return i, i < len(s.keys) && s.keys[i] == k
+}
+
+// insert puts (k, v) at index i, which find or seek returned for k.
+func (s *keyed[V]) insert(i int, k int64, v V) {
+	s.keys = slices.Insert(s.keys, i, k)
+	s.vals = slices.Insert(s.vals, i, v)
+}
+
+// remove removes the entry at index i.
+func (s *keyed[V]) remove(i int) {
+	s.keys = slices.Delete(s.keys, i, i+1)
+	s.vals = slices.Delete(s.vals, i, i+1)
+}
+
+// dropFront removes the entries with a key below lim for which drop
+// returns true (all of them when drop is nil).
+func (s *keyed[V]) dropFront(lim int64, drop func(k int64, v V) bool) {
+	n, _ := s.find(lim) // entries [0, n) have keys below lim
+	if drop == nil {
+		s.keys = slices.Delete(s.keys, 0, n)
+		s.vals = slices.Delete(s.vals, 0, n)
+		return
+	}
+	kept := 0
+	for i := 0; i < n; i++ {
+		if !drop(s.keys[i], s.vals[i]) {
+			s.keys[kept], s.vals[kept] = s.keys[i], s.vals[i]
+			kept++
 		}
 	}
-	for k := range a.seen {
-		if k < horizon-24*60 {
-			delete(a.seen, k)
-		}
-	}
-	for k := range a.night {
-		if k < horizon {
-			delete(a.night, k)
-		}
+	if kept < n {
+		s.keys = slices.Delete(s.keys, kept, n)
+		s.vals = slices.Delete(s.vals, kept, n)
 	}
 }
 
 func (a *Actor) release(tg *target) {
-	for b, p := range tg.byBucket {
-		if p != nil {
-			a.free = append(a.free, p)
-			tg.byBucket[b] = nil
+	for b, r := range tg.rec {
+		if r != noRec {
+			a.freeRec = append(a.freeRec, r)
+			tg.rec[b] = noRec
 		}
 	}
+}
+
+// record returns pending record r: its features, raw quantiles and
+// published quantiles.
+func (a *Actor) record(r int32) (x *pendingX, raw, pub []float64) {
+	nl := len(a.cfg.Levels)
+	c, k := r/recChunk, int(r%recChunk)
+	q := a.recQ[c][k*2*nl : (k+1)*2*nl]
+	return &a.recX[c][k], q[:nl:nl], q[nl:]
+}
+
+// newRecord returns a record number not in use.
+func (a *Actor) newRecord() int32 {
+	if k := len(a.freeRec); k > 0 {
+		r := a.freeRec[k-1]
+		a.freeRec = a.freeRec[:k-1]
+		return r
+	}
+	if a.nrec%recChunk == 0 {
+		a.recX = append(a.recX, make([]pendingX, recChunk))
+		a.recQ = append(a.recQ, make([]float64, recChunk*2*len(a.cfg.Levels)))
+	}
+	a.nrec++
+	return a.nrec - 1
+}
+
+// keep stores x, the features of a step issued in a lead bucket, in a
+// pending record's features.
+func keep(px *pendingX, x *model.Features) {
+	*px = pendingX{validStart: x.ValidStart, lead: x.LeadMinutes, avail: x.Availability,
+		driver: x.Driver, runAge: x.RunAgeMinutes, lastPower: x.LastPowerMW, night: x.Night}
+}
+
+// expand writes to x the features a pending record of a target of the
+// given minutes in a lead bucket was issued with (features built them).
+func (a *Actor) expand(x *model.Features, px *pendingX, minutes, bucket int) {
+	*x = model.Features{
+		ValidStart:    px.validStart,
+		ValidMinutes:  minutes,
+		LeadMinutes:   px.lead,
+		Bucket:        bucket,
+		CapacityMW:    a.site.CapacityMW,
+		Availability:  px.avail,
+		Driver:        px.driver,
+		RunAgeMinutes: px.runAge,
+		LastPowerMW:   px.lastPower,
+		Night:         px.night,
+	}
+	h, m := hourMinute(px.validStart, time.Duration(minutes)*time.Minute/2)
+	x.HourUTC = float64(h) + float64(m)/60
 }
 
 // settle scores every forecast pending for the reading's interval, then
@@ -339,20 +504,22 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 	nl := len(a.cfg.Levels)
 	y := r.PowerMW
 	a.learn = a.learn[:0]
-	for b, p := range tg.byBucket {
-		if p == nil || p.x.Night || r.Curtailed {
+	for b, rec := range tg.rec {
+		if rec == noRec {
 			continue
 		}
-		pit := pitOf(a.cfg.Levels, p.raw, y)
-		copy(a.pub, p.cal)
-		a.publishable(a.pub, &p.x)
+		px, raw, pub := a.record(rec)
+		if px.night || r.Curtailed {
+			continue
+		}
+		pit := pitOf(a.cfg.Levels, raw, y)
 		u := conformal.TieDraw(a.siteHash, r.IntervalStart, b)
 		for j := 0; j < nl; j++ {
 			c := &a.cells[b*nl+j]
-			hit := conformal.TieHit(a.cfg.Levels, a.pub, j, y, u)
+			hit := conformal.TieHit(a.cfg.Levels, pub, j, y, u)
 			// The calibrator learns from the published quantile as
 			// judged, ties at a point mass included.
-			issued := a.pub[j]
+			issued := pub[j]
 			if y == issued && !hit {
 				issued = math.Nextafter(y, math.Inf(-1))
 			}
@@ -368,7 +535,9 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 			}
 			a.checkAlarm(c, b, j, at)
 		}
-		a.learn = append(a.learn, &p.x)
+		x := &a.learnX[b]
+		a.expand(x, px, tg.minutes, b)
+		a.learn = append(a.learn, x)
 	}
 	if len(a.learn) > 0 {
 		a.fc.Learn(y, a.learn) // buckets ascend: shortest lead first
@@ -425,10 +594,31 @@ func (a *Actor) publishable(q []float64, x *model.Features) {
 		}
 		return
 	}
-	sort.Float64s(q)
+	// slices.Sort leaves a sorted slice as it is (no swap), so skipping it
+	// then changes nothing. Without NaN, sorted is q[j-1] <= q[j] for all
+	// j, the quick test; a NaN fails it and slices.IsSorted decides.
+	sorted := true
+	for j := 1; j < len(q); j++ {
+		if !(q[j-1] <= q[j]) {
+			sorted = false
+			break
+		}
+	}
+	if !sorted && !slices.IsSorted(q) {
+		slices.Sort(q)
+	}
+	// Clip each v to max(0, min(hi, v)) (the built-ins treat NaN and signed
+	// zeros as math.Max and math.Min do). Sorted, NaNs first, q holds from
+	// the left the values that are not above 0, then values in (0, hi],
+	// which clipping leaves as they are, then the values that are not at or
+	// below hi: only the two ends need the work (clipping twice is clipping
+	// once).
 	hi := x.CapacityMW * x.Availability
-	for j, v := range q {
-		q[j] = math.Max(0, math.Min(hi, v))
+	for j := 0; j < len(q) && !(q[j] > 0); j++ {
+		q[j] = max(0, min(hi, q[j]))
+	}
+	for j := len(q) - 1; j >= 0 && !(q[j] <= hi); j-- {
+		q[j] = max(0, min(hi, q[j]))
 	}
 }
 
@@ -455,31 +645,49 @@ func (a *Actor) horizonEnd(from time.Time) time.Time {
 	return endNextDay
 }
 
-// features builds what the forecaster knows about the interval [t, t+step).
-func (a *Actor) features(x *model.Features, t time.Time, step int) {
-	*x = model.Features{
-		ValidStart:    t,
-		ValidMinutes:  step,
-		LeadMinutes:   int(t.Sub(a.now) / time.Minute),
-		CapacityMW:    a.site.CapacityMW,
-		Availability:  a.availability,
-		Driver:        math.NaN(),
-		RunAgeMinutes: math.NaN(),
-		LastPowerMW:   a.lastPower,
-	}
-	x.Bucket = a.cfg.Buckets.Of(x.LeadMinutes)
-	mid := t.Add(time.Duration(step) * time.Minute / 2)
-	x.HourUTC = float64(mid.Hour()) + float64(mid.Minute())/60
+// features builds what the forecaster knows about the interval [t, t+step),
+// whose lead (t.Sub(a.now) in whole minutes) and lead bucket the caller
+// has found. x already holds what all the steps of a refresh share
+// (ValidMinutes, CapacityMW, Availability, LastPowerMW); features sets
+// every other field. Within one refresh it is called for increasing t:
+// a.cursor holds, per kept run, how many of its rows start at or before
+// the previous t and the end of the last of them (all zero at the first
+// step), and a.nightAt where the previous step's key was in a.night.
+func (a *Actor) features(x *model.Features, t time.Time, lead, bucket, step int) {
+	x.ValidStart = t
+	x.LeadMinutes = lead
+	x.Bucket = bucket
+	x.Driver = math.NaN()
+	x.RunAgeMinutes = math.NaN()
+	x.Night = false
+	h, m := hourMinute(t, time.Duration(step)*time.Minute/2)
+	x.HourUTC = float64(h) + float64(m)/60 // of the middle of the interval
 	for i := len(a.runs) - 1; i >= 0; i-- {
 		r := &a.runs[i]
 		if r.IssuedAt.After(a.now) {
 			continue
 		}
-		row := r.At(t)
-		if row == nil {
+		// WeatherRun.At, resumed: rows are sorted, so the count of rows
+		// starting at or before t only grows with t.
+		cur := &a.cursor[i]
+		c := cur.rows
+		for c < len(r.Rows) && !r.Rows[c].ValidStart.After(t) {
+			c++
+		}
+		if c == 0 {
 			continue
 		}
-		x.RunAgeMinutes = a.now.Sub(r.IssuedAt).Minutes()
+		if c != cur.rows {
+			cur.rows, cur.end = c, r.Rows[c-1].End()
+		}
+		row := &r.Rows[c-1]
+		if !t.Before(cur.end) {
+			continue
+		}
+		if math.IsNaN(cur.age) {
+			cur.age = a.now.Sub(r.IssuedAt).Minutes()
+		}
+		x.RunAgeMinutes = cur.age
 		switch {
 		case r.driver >= 0 && !math.IsNaN(row.Values[r.driver]):
 			x.Driver = row.Values[r.driver]
@@ -491,20 +699,36 @@ func (a *Actor) features(x *model.Features, t time.Time, step int) {
 	if a.site.Kind == model.KindPV {
 		if a.site.HasLocation() {
 			lat, lon := *a.site.Lat, *a.site.Lon
-			end := t.Add(time.Duration(step) * time.Minute)
 			key := unixMin(t)
-			night, ok := a.night[key]
+			i, ok := a.night.seek(a.nightAt, key)
 			if !ok {
-				night = sunDown(t, lat, lon) && sunDown(mid, lat, lon) && sunDown(end, lat, lon)
-				a.night[key] = night
+				mid := t.Add(time.Duration(step) * time.Minute / 2)
+				end := t.Add(time.Duration(step) * time.Minute)
+				night := sunDown(t, lat, lon) && sunDown(mid, lat, lon) && sunDown(end, lat, lon)
+				a.night.insert(i, key, night)
 			}
-			x.Night = night
+			x.Night = a.night.vals[i]
+			a.nightAt = i + 1
 		} else if !math.IsNaN(x.Driver) {
 			x.Night = x.Driver <= 0 // no location: trust the forecast irradiance
 		} else {
 			x.Night = a.darkSlot(t) // neither: what the meter has shown
 		}
 	}
+}
+
+// hourMinute returns the Hour and Minute of t.Add(d), from the Unix time
+// when t is in UTC (the usual case, and cheaper); d is whole seconds.
+func hourMinute(t time.Time, d time.Duration) (hour, minute int) {
+	if t.Location() != time.UTC || d%time.Second != 0 {
+		u := t.Add(d)
+		return u.Hour(), u.Minute()
+	}
+	s := (t.Unix() + int64(d/time.Second)) % 86400
+	if s < 0 {
+		s += 86400
+	}
+	return int(s / 3600), int(s % 3600 / 60)
 }
 
 // darkSlots is how long a quarter-hour of the day must have shown no output,
@@ -539,7 +763,25 @@ func sunDown(t time.Time, lat, lon float64) bool {
 // calibrators' adjustment, sorting and clipping. Every issued step becomes
 // the pending forecast of its (interval, lead bucket). It returns nil before
 // the actor has seen any input.
+//
+// The bundle returned belongs to the actor and is valid until the next call
+// of Refresh on it, which reuses its slices (so that a refresh does not
+// allocate at steady state): a caller that keeps any of it longer copies
+// it. Each calibrator of a lead bucket the bundle reaches is asked for its
+// adjustment (Calibrator.Adjust) once per refresh rather than once per step
+// (within a refresh no outcome comes in, so it says the same), and the
+// forecaster is not asked for a PV step at night, whose quantiles are zero
+// whatever it says.
 func (a *Actor) Refresh() *model.Bundle {
+	return a.RefreshInto(&a.bundle)
+}
+
+// RefreshInto is Refresh writing into dst, whose slices it reuses, and
+// returning dst (or nil before any input). Actors that run one after the
+// other (the sites of a pool shard) can share one dst instead of each
+// keeping its own bundle, as Refresh does; dst is then valid until the next
+// refresh into it.
+func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 	if a.now.IsZero() {
 		return nil
 	}
@@ -549,7 +791,8 @@ func (a *Actor) Refresh() *model.Bundle {
 	end := a.horizonEnd(a.now)
 	n := int((end.Sub(start) + stepDur - 1) / stepDur)
 	nl := len(a.cfg.Levels)
-	b := &model.Bundle{
+	b := dst
+	*b = model.Bundle{
 		Site:         a.site.ID,
 		IssuedAt:     a.now,
 		Watermark:    a.now,
@@ -557,9 +800,9 @@ func (a *Actor) Refresh() *model.Bundle {
 		CapacityMW:   a.site.CapacityMW,
 		Availability: a.availability,
 		Levels:       a.cfg.Levels,
-		Steps:        make([]model.Step, n),
-		Q:            make([]float64, n*nl),
-		Expected:     make([]float64, n),
+		Steps:        slices.Grow(b.Steps[:0], n)[:n],
+		Q:            slices.Grow(b.Q[:0], n*nl)[:n*nl],
+		Expected:     slices.Grow(b.Expected[:0], n)[:n],
 	}
 	if len(a.cells) > 0 {
 		b.Calibrator = a.cells[0].cal.Name()
@@ -570,24 +813,64 @@ func (a *Actor) Refresh() *model.Bundle {
 			break
 		}
 	}
-	var x model.Features
+	a.gen++
+	a.cursor = a.cursor[:0]
+	for range a.runs {
+		a.cursor = append(a.cursor, runCursor{age: math.NaN()})
+	}
+	a.nightAt, _ = a.night.find(unixMin(start))
+	a.pendAt, _ = a.pending.find(unixMin(start))
+	a.x = model.Features{
+		ValidMinutes: step,
+		CapacityMW:   a.site.CapacityMW,
+		Availability: a.availability,
+		LastPowerMW:  a.lastPower,
+	}
+	edges := a.cfg.Buckets.Edges
+	bucket := 0
+	lead0 := start.Sub(a.now)
 	for i := 0; i < n; i++ {
-		t := start.Add(time.Duration(i) * stepDur)
-		a.features(&x, t, step)
-		b.Steps[i] = model.Step{ValidStart: t, ValidMinutes: step, LeadMinutes: x.LeadMinutes}
-		p := a.pendingFor(t, step, x.Bucket)
-		p.x = x
-		a.fc.Quantiles(p.raw, &x, a.cfg.Levels)
-		for j := 0; j < nl; j++ {
-			a.adj[j], a.tmp[j] = a.cells[x.Bucket*nl+j].cal.Adjust()
+		d := time.Duration(i) * stepDur
+		t := start.Add(d)
+		lead := int((lead0 + d) / time.Minute) // t.Sub(a.now), in minutes
+		// Buckets.Of, resumed: leads increase with t, and every edge passed
+		// for a shorter lead is passed for this one.
+		for bucket+1 < len(edges) && lead >= edges[bucket+1] {
+			bucket++
 		}
-		a.fc.Quantiles(p.cal, &x, a.adj)
-		for j := 0; j < nl; j++ {
-			p.cal[j] += a.tmp[j]
-		}
+		b.Steps[i] = model.Step{ValidStart: t, ValidMinutes: step, LeadMinutes: lead}
+		px, raw, pub := a.record(a.pendingFor(t, step, bucket))
+		x := &a.x
+		a.features(x, t, lead, bucket, step)
+		keep(px, x)
 		row := b.Row(i)
-		copy(row, p.cal)
-		a.publishable(row, &x)
+		// Every calibrator of the bucket is asked, at night too: a
+		// calibrator may note what it issued (conformal.Split does).
+		levels, offsets, zero := a.adjustments(bucket)
+		if x.Night {
+			// publishable zeroes a night row whatever the quantiles, and
+			// settlement passes night forecasts over: no need to ask the
+			// forecaster.
+			clear(row)
+		} else {
+			a.fc.Quantiles(raw, x, a.cfg.Levels)
+			a.fc.Quantiles(row, x, levels)
+			// Adding a zero offset can only turn -0 into +0, which
+			// clipping does anyway.
+			if !zero {
+				for j, o := range offsets {
+					row[j] += o
+				}
+			}
+			a.publishable(row, x)
+		}
+		copy(pub, row)
+		// Neighbouring steps often publish the same row (the weather runs
+		// are hourly, the steps shorter): then their sums are the same too.
+		if i > 0 && sameBits(row, b.Row(i-1)) {
+			b.Expected[i] = b.Expected[i-1]
+			continue
+		}
 		sum := 0.0
 		for _, v := range row {
 			sum += v
@@ -597,32 +880,69 @@ func (a *Actor) Refresh() *model.Bundle {
 	return b
 }
 
+// sameBits reports whether p and q hold the same floats, bit for bit.
+func sameBits(p, q []float64) bool {
+	if len(p) != len(q) {
+		return false
+	}
+	for j, v := range p {
+		if math.Float64bits(v) != math.Float64bits(q[j]) {
+			return false
+		}
+	}
+	return true
+}
+
+// adjustments returns the levels to ask the forecaster for, and the offsets
+// to add, for a lead bucket in this refresh; zero reports whether every
+// offset is zero.
+func (a *Actor) adjustments(bucket int) (levels, offsets []float64, zero bool) {
+	nl := len(a.cfg.Levels)
+	lo, hi := bucket*nl, (bucket+1)*nl
+	if a.adjGen[bucket] != a.gen {
+		z := true
+		for k := lo; k < hi; k++ {
+			a.adjLevel[k], a.adjOffset[k] = a.cells[k].cal.Adjust()
+			z = z && a.adjOffset[k] == 0
+		}
+		a.adjGen[bucket] = a.gen
+		a.adjZero[bucket] = z
+	}
+	return a.adjLevel[lo:hi:hi], a.adjOffset[lo:hi:hi], a.adjZero[bucket]
+}
+
 // pendingFor returns the pending record of (interval t, bucket), reusing a
-// free one.
-func (a *Actor) pendingFor(t time.Time, step, bucket int) *pending {
+// free one. Within a refresh it is called for increasing t, and the search
+// resumes at a.pendAt.
+func (a *Actor) pendingFor(t time.Time, step, bucket int) int32 {
 	key := unixMin(t)
-	tg, ok := a.pending[key]
+	i, ok := a.pending.seek(a.pendAt, key)
+	a.pendAt = i + 1
+	var tg *target
+	if ok {
+		tg = a.pending.vals[i]
+	}
 	if !ok || tg.minutes != step {
 		if ok {
 			a.release(tg)
 		} else {
-			tg = &target{byBucket: make([]*pending, a.cfg.Buckets.Len())}
-			a.pending[key] = tg
+			if k := len(a.freeT); k > 0 {
+				tg = a.freeT[k-1]
+				a.freeT = a.freeT[:k-1]
+			} else {
+				tg = &target{rec: make([]int32, a.cfg.Buckets.Len())}
+				for b := range tg.rec {
+					tg.rec[b] = noRec
+				}
+			}
+			a.pending.insert(i, key, tg)
 		}
 		tg.minutes = step
 	}
-	p := tg.byBucket[bucket]
-	if p == nil {
-		if k := len(a.free); k > 0 {
-			p = a.free[k-1]
-			a.free = a.free[:k-1]
-		} else {
-			nl := len(a.cfg.Levels)
-			p = &pending{raw: make([]float64, nl), cal: make([]float64, nl)}
-		}
-		tg.byBucket[bucket] = p
+	if tg.rec[bucket] == noRec {
+		tg.rec[bucket] = a.newRecord()
 	}
-	return p
+	return tg.rec[bucket]
 }
 
 // LevelStats is the cumulative coverage of one level over every lead bucket.

@@ -10,6 +10,8 @@ import (
 	"fmt"
 	"hash"
 	"math"
+	"runtime"
+	"runtime/debug"
 	"testing"
 	"time"
 
@@ -87,13 +89,42 @@ func fingerprintCases() []fingerprintCase {
 	}
 }
 
+// moreFingerprintCases are cases with the calibrators and forecasters other
+// than the defaults: each can take another path through Refresh (a
+// calibrator that notes what it issued, an offset that is not zero,
+// forecasters without the baseline's memos).
+func moreFingerprintCases() []fingerprintCase {
+	sites := testSites()
+	named := func(name string) func(model.Site) model.Forecaster {
+		return func(s model.Site) model.Forecaster {
+			f, err := model.New(name, s, model.Buckets{})
+			if err != nil {
+				panic(err)
+			}
+			return f
+		}
+	}
+	var cs []fingerprintCase
+	for i, m := range []string{conformal.MethodSplit, conformal.MethodPID, conformal.MethodDtACI} {
+		for k, s := range sites {
+			cs = append(cs, fingerprintCase{s.ID + " calibrator " + m, s, Config{Calibrator: conformal.Options{Method: m}}, variedFeed(s, 4, uint64(30+2*i+k))})
+		}
+	}
+	for i, f := range []string{"climatology", "persistence"} {
+		for k, s := range sites {
+			cs = append(cs, fingerprintCase{s.ID + " forecaster " + f, s, Config{NewForecaster: named(f)}, variedFeed(s, 4, uint64(40+2*i+k))})
+		}
+	}
+	return cs
+}
+
 // fingerprint plays every case and hashes what the actors give out: every
 // encoded bundle, every alarm event (JSON), every refusal's error text and
 // the final coverage statistics.
-func fingerprint(t *testing.T) string {
+func fingerprint(t *testing.T, cases []fingerprintCase) string {
 	t.Helper()
 	h := sha256.New()
-	for _, c := range fingerprintCases() {
+	for _, c := range cases {
 		a, err := NewActor(c.site, c.cfg.WithDefaults())
 		if err != nil {
 			t.Fatal(err)
@@ -153,13 +184,21 @@ func playHash(t *testing.T, h hash.Hash, a *Actor, f feed) {
 // code must give the same bytes for the same inputs.
 const wantFingerprint = "d6ceb1850e8cb5418ef7b231a378a21efbf01567240ba0a517440f1c0bb273db"
 
+// wantMoreFingerprint is the SHA-256 of everything moreFingerprintCases
+// give out, recorded the same way with the actor, baseline and encoder of
+// commit de617d0 and the calibrators that came after it (pid, dtaci, split),
+// which the optimised actor must treat exactly as the original did.
+const wantMoreFingerprint = "02e13baca6d8ba24542dc8d843a2a9684b1f2a5764b403ff57c0d6e1456a9ccc"
+
 // TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
 // events, refusals, coverage statistics) over a fixed invented feed is the
 // same as before the performance work.
 func TestFingerprintUnchanged(t *testing.T) {
-	got := fingerprint(t)
-	if got != wantFingerprint {
+	if got := fingerprint(t, fingerprintCases()); got != wantFingerprint {
 		t.Errorf("fingerprint %s, want %s", got, wantFingerprint)
+	}
+	if got := fingerprint(t, moreFingerprintCases()); got != wantMoreFingerprint {
+		t.Errorf("fingerprint of the other calibrators and forecasters %s, want %s", got, wantMoreFingerprint)
 	}
 }
 
@@ -231,17 +270,17 @@ func TestDemoFingerprintUnchanged(t *testing.T) {
 // Config.KeepRuns = 4 of them, the ring holds 8).
 type benchGen struct {
 	site model.Site
-	runs [8]model.WeatherRun
-	next int // readings produced
-	nrun int // runs produced
+	runs [8]*model.WeatherRun // each its own allocation: the actor keeps 4
+	next int                  // readings produced
+	nrun int                  // runs produced
 	rd   model.Reading
 }
 
 func newBenchGen(site model.Site) *benchGen {
 	g := &benchGen{site: site}
 	for i := range g.runs {
-		r := &g.runs[i]
-		r.Site = site.ID
+		r := &model.WeatherRun{Site: site.ID}
+		g.runs[i] = r
 		if site.Kind == model.KindPV {
 			r.Vars = []string{"ghi_wm2", "temp_c"}
 		} else {
@@ -285,7 +324,7 @@ func (g *benchGen) step(a *Actor) error {
 		if iss.After(end) {
 			break
 		}
-		r := &g.runs[g.nrun%len(g.runs)]
+		r := g.runs[g.nrun%len(g.runs)]
 		r.IssuedAt = iss
 		for h := range r.Rows {
 			row := &r.Rows[h]
@@ -389,6 +428,9 @@ func BenchmarkRefreshEncode(b *testing.B) {
 			a, g := warmActor(b, testSites()[1], sz.steps, sz.levels)
 			enc := stream.NewBundleEncoder()
 			var buf bytes.Buffer
+			if err := enc.Encode(&buf, a.Refresh()); err != nil { // the encoder's first bundle of a shape
+				b.Fatal(err)
+			}
 			b.ReportAllocs()
 			for b.Loop() {
 				b.StopTimer()
@@ -434,6 +476,9 @@ func BenchmarkInput(b *testing.B) {
 			a, g := warmActor(b, site, 144, 19)
 			enc := stream.NewBundleEncoder()
 			var buf bytes.Buffer
+			if err := enc.Encode(&buf, a.Refresh()); err != nil {
+				b.Fatal(err)
+			}
 			b.ReportAllocs()
 			for b.Loop() {
 				if err := g.step(a); err != nil {
@@ -445,5 +490,169 @@ func BenchmarkInput(b *testing.B) {
 				}
 			}
 		})
+	}
+}
+
+// siteBytes returns the heap the state of one site takes at steady state:
+// the growth of the live heap from building n actors for copies of site and
+// warming each with warmDays of its own invented feed, divided by n. What
+// an actor keeps of its inputs (the weather runs in force) counts; the feed
+// generators do not. With shared, the actors refresh into one bundle
+// (RefreshInto), as the sites of a pool shard could, instead of each
+// keeping its own (Refresh).
+func siteBytes(tb testing.TB, site model.Site, cfg Config, n int, shared bool) float64 {
+	tb.Helper()
+	var before, after runtime.MemStats
+	runtime.GC()
+	runtime.ReadMemStats(&before)
+	var bundle model.Bundle
+	actors := make([]*Actor, n)
+	for i := range actors {
+		s := site
+		s.ID = fmt.Sprintf("%s-%03d", site.ID, i)
+		a, err := NewActor(s, cfg.WithDefaults())
+		if err != nil {
+			tb.Fatal(err)
+		}
+		g := newBenchGen(s)
+		for range warmDays * 96 {
+			if err := g.step(a); err != nil {
+				tb.Fatal(err)
+			}
+			if shared {
+				a.RefreshInto(&bundle)
+			} else {
+				a.Refresh()
+			}
+		}
+		actors[i] = a
+	}
+	runtime.GC()
+	runtime.ReadMemStats(&after)
+	runtime.KeepAlive(actors)
+	runtime.KeepAlive(&bundle)
+	return float64(int64(after.HeapAlloc)-int64(before.HeapAlloc)) / float64(n)
+}
+
+// BenchmarkSiteMemory reports the heap one site's state takes at steady
+// state (bytes/site), with the default configuration (19 levels, 8 lead
+// buckets, bundles to the end of the next UTC day and at least 36 h) and
+// at the bundle sizes of the other benchmarks.
+func BenchmarkSiteMemory(b *testing.B) {
+	for _, site := range testSites() {
+		b.Run(site.ID+"/default", func(b *testing.B) {
+			for b.Loop() {
+				b.ReportMetric(siteBytes(b, site, Config{}, 20, false), "bytes/site")
+			}
+		})
+		b.Run(site.ID+"/default/shared-bundle", func(b *testing.B) {
+			for b.Loop() {
+				b.ReportMetric(siteBytes(b, site, Config{}, 20, true), "bytes/site")
+			}
+		})
+	}
+	for _, sz := range benchSizes {
+		b.Run(sizeName(sz.steps, sz.levels), func(b *testing.B) {
+			cfg := Config{Levels: levelsOf(sz.levels), HorizonMinutes: sz.steps * 15}
+			for b.Loop() {
+				b.ReportMetric(siteBytes(b, testSites()[1], cfg, 20, false), "bytes/site")
+			}
+		})
+	}
+}
+
+// raceDetector reports whether the test binary was built with -race.
+func raceDetector() bool {
+	bi, ok := debug.ReadBuildInfo()
+	if !ok {
+		return false
+	}
+	for _, s := range bi.Settings {
+		if s.Key == "-race" {
+			return s.Value == "true"
+		}
+	}
+	return false
+}
+
+// mallocs returns how many heap allocations n calls of f make in all, after
+// n calls to warm up (testing.AllocsPerRun rounds the mean down, which
+// would hide an allocation every few calls). The count is the process's,
+// and the runtime itself allocates now and then: the fewest of three
+// counts is returned, so an allocation of f made every call, every weather
+// run or every day shows, and a stray one of the runtime does not.
+func mallocs(n int, f func()) uint64 {
+	defer runtime.GOMAXPROCS(runtime.GOMAXPROCS(1))
+	for range n {
+		f()
+	}
+	fewest := uint64(math.MaxUint64)
+	for range 3 {
+		runtime.GC() // no collection left running to allocate in the count
+		var before, after runtime.MemStats
+		runtime.ReadMemStats(&before)
+		for range n {
+			f()
+		}
+		runtime.ReadMemStats(&after)
+		fewest = min(fewest, after.Mallocs-before.Mallocs)
+	}
+	return fewest
+}
+
+// TestSteadyStateDoesNotAllocate: once warm, an actor applies readings and
+// weather runs and refreshes, and an encoder writes its bundles, without a
+// single heap allocation (issue 7 allows 4 per refresh and encode). Each
+// count covers 4 days of inputs (384 readings, 16 weather runs), after 4
+// days more to warm up. An alarm transition allocates its event (its text):
+// the alarm tolerance is set out of reach here.
+func TestSteadyStateDoesNotAllocate(t *testing.T) {
+	if raceDetector() {
+		t.Skip("the race detector's runtime allocates on its own")
+	}
+	for _, site := range testSites() {
+		for _, sz := range []struct{ steps, levels int }{{144, 19}, {192, 99}} {
+			a, g := warmActor(t, site, sz.steps, sz.levels)
+			for i := range a.cells {
+				mon, err := conformal.NewMonitor(a.cfg.Levels[i%len(a.cfg.Levels)], conformal.MonitorOptions{
+					Window: a.cfg.CoverageWindow, Alarm: conformal.AlarmOptions{Tolerance: 0.999}})
+				if err != nil {
+					t.Fatal(err)
+				}
+				a.cells[i].mon = mon
+			}
+			enc := stream.NewBundleEncoder()
+			var buf bytes.Buffer
+			name := site.ID + "/" + sizeName(sz.steps, sz.levels)
+			cases := []struct {
+				what string
+				fn   func()
+			}{
+				{"Refresh alone", func() { a.Refresh() }},
+				{"Refresh and Encode", func() {
+					buf.Reset()
+					if err := enc.Encode(&buf, a.Refresh()); err != nil {
+						t.Fatal(err)
+					}
+				}},
+				{"Meter, Weather, Refresh and Encode", func() {
+					if err := g.step(a); err != nil {
+						t.Fatal(err)
+					}
+					buf.Reset()
+					if err := enc.Encode(&buf, a.Refresh()); err != nil {
+						t.Fatal(err)
+					}
+				}},
+			}
+			for _, c := range cases {
+				if n := mallocs(4*96, c.fn); n != 0 {
+					t.Errorf("%s: %s: %d allocations over %d calls, want 0", name, c.what, n, 4*96)
+				}
+			}
+			if n := testing.AllocsPerRun(100, func() { a.Refresh() }); n != 0 {
+				t.Errorf("%s: AllocsPerRun(Refresh) = %v, want 0", name, n)
+			}
+		}
 	}
 }
