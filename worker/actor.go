@@ -138,6 +138,7 @@ type runCursor struct {
 type pendingX struct {
 	validStart                       time.Time
 	lead                             int
+	issued                           int32 // forecasts issued for the interval in the bucket so far
 	avail, driver, runAge, lastPower float64
 	night                            bool
 }
@@ -194,6 +195,9 @@ type Actor struct {
 	recQ    [][]float64
 	nrec    int32   // records made
 	freeRec []int32 // records no longer in use
+	// A record for a step whose pending forecast stays (closerLead).
+	spareX pendingX
+	spareQ []float64
 
 	cells  []cell // [bucket*len(levels)+level]
 	events []conformal.Event
@@ -248,6 +252,7 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 	h := fnv.New64a()
 	h.Write([]byte(site.ID))
 	a.siteHash = h.Sum64()
+	a.spareQ = make([]float64, 2*len(cfg.Levels))
 	a.adjLevel = make([]float64, len(a.cells))
 	a.adjOffset = make([]float64, len(a.cells))
 	a.adjGen = make([]uint64, cfg.Buckets.Len())
@@ -549,6 +554,9 @@ func (a *Actor) checkAlarm(c *cell, b, j int, at time.Time) {
 	if changed, _ := c.mon.Check(); changed {
 		a.events = append(a.events, c.mon.Event(a.site.ID, a.cfg.Buckets.Name(b), at))
 	}
+	if changed, _ := c.mon.CheckRaw(); changed {
+		a.events = append(a.events, c.mon.RawEvent(a.site.ID, a.cfg.Buckets.Name(b), at))
+	}
 }
 
 // Events returns the alarm transitions queued since the last call and
@@ -839,10 +847,21 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 			bucket++
 		}
 		b.Steps[i] = model.Step{ValidStart: t, ValidMinutes: step, LeadMinutes: lead}
-		px, raw, pub := a.record(a.pendingFor(t, step, bucket))
+		rec, fresh := a.pendingFor(t, step, bucket)
+		px, raw, pub := a.record(rec)
+		issued := int32(0)
+		if !fresh {
+			issued = px.issued
+			if !a.replaces(t, bucket, issued) {
+				// The pending forecast of this (interval, bucket) stays.
+				px.issued++
+				px, raw, pub = &a.spareX, a.spareQ[:nl:nl], a.spareQ[nl:]
+			}
+		}
 		x := &a.x
 		a.features(x, t, lead, bucket, step)
 		keep(px, x)
+		px.issued = issued + 1
 		row := b.Row(i)
 		// Every calibrator of the bucket is asked, at night too: a
 		// calibrator may note what it issued (conformal.Split does).
@@ -911,10 +930,23 @@ func (a *Actor) adjustments(bucket int) (levels, offsets []float64, zero bool) {
 	return a.adjLevel[lo:hi:hi], a.adjOffset[lo:hi:hi], a.adjZero[bucket]
 }
 
+// replaces reports whether a forecast issued now should replace the
+// pending one of interval t in a lead bucket, after issued forecasts for
+// it: with probability 1/(issued+1), drawn replayably (conformal.TieDraw).
+// Each (interval, bucket) keeps one forecast for settlement, and this
+// reservoir sampling keeps each forecast issued for it alike, so the
+// outcomes a bucket's calibrators and residual pools learn from represent
+// every lead of the bucket, as the forecasts they adjust do (keeping the
+// latest would teach them the bucket's shortest lead only).
+func (a *Actor) replaces(t time.Time, bucket int, issued int32) bool {
+	u := conformal.TieDraw(a.siteHash, t, 1000+bucket+64*int(issued))
+	return u*float64(issued+1) < 1
+}
+
 // pendingFor returns the pending record of (interval t, bucket), reusing a
-// free one. Within a refresh it is called for increasing t, and the search
-// resumes at a.pendAt.
-func (a *Actor) pendingFor(t time.Time, step, bucket int) int32 {
+// free one, and whether it is new. Within a refresh it is called for
+// increasing t, and the search resumes at a.pendAt.
+func (a *Actor) pendingFor(t time.Time, step, bucket int) (rec int32, fresh bool) {
 	key := unixMin(t)
 	i, ok := a.pending.seek(a.pendAt, key)
 	a.pendAt = i + 1
@@ -941,8 +973,9 @@ func (a *Actor) pendingFor(t time.Time, step, bucket int) int32 {
 	}
 	if tg.rec[bucket] == noRec {
 		tg.rec[bucket] = a.newRecord()
+		fresh = true
 	}
-	return tg.rec[bucket]
+	return tg.rec[bucket], fresh
 }
 
 // LevelStats is the cumulative coverage of one level over every lead bucket.

@@ -177,18 +177,21 @@ func playHash(t *testing.T, h hash.Hash, a *Actor, f feed) {
 	fmt.Fprintf(h, "alarms %d\n", a.ActiveAlarms())
 }
 
-// wantFingerprint is the SHA-256 of everything fingerprintCases give out,
-// recorded with the actor, the baseline forecaster and the bundle encoder
-// as they stood before the performance work of issue 7 (commit de617d0),
-// by running this test and copying the value it printed. The optimised
-// code must give the same bytes for the same inputs.
-const wantFingerprint = "d6ceb1850e8cb5418ef7b231a378a21efbf01567240ba0a517440f1c0bb273db"
+// wantFingerprint is the SHA-256 of everything fingerprintCases give out.
+// It was first recorded with the actor, the baseline forecaster and the
+// bundle encoder as they stood before the performance work of issue 7
+// (commit de617d0), and the optimised code gave the same bytes. It was
+// recorded again, by running this test and copying the value it printed,
+// after one intended change of behaviour: each (interval, lead bucket)
+// keeps a reservoir sample of the forecasts issued for it instead of the
+// latest (Actor.replaces). Any other change of these bytes is a bug.
+const wantFingerprint = "26f16b01088f3198d64987fa6650555342ddbf1c5779675a08bbc1e211849bbe"
 
 // wantMoreFingerprint is the SHA-256 of everything moreFingerprintCases
-// give out, recorded the same way with the actor, baseline and encoder of
-// commit de617d0 and the calibrators that came after it (pid, dtaci, split),
-// which the optimised actor must treat exactly as the original did.
-const wantMoreFingerprint = "02e13baca6d8ba24542dc8d843a2a9684b1f2a5764b403ff57c0d6e1456a9ccc"
+// give out (the calibrators pid, dtaci and split, and the reference
+// forecasters), recorded like wantFingerprint: first from the code of
+// commit de617d0, again after the reservoir sampling of pending forecasts.
+const wantMoreFingerprint = "d7d30446352a576e37eafe4b6f6383265414cc45eb8e672cb7ee705cc22ef470"
 
 // TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
 // events, refusals, coverage statistics) over a fixed invented feed is the
@@ -248,9 +251,9 @@ func demoFingerprint(t *testing.T) string {
 	return hex.EncodeToString(sum.Sum(nil))
 }
 
-// wantDemoFingerprint was recorded like wantFingerprint, before the
-// performance work of issue 7 (commit de617d0).
-const wantDemoFingerprint = "c7dd6e15bd1695ac9caf2e1553a620ef91740ab17774093ff01533c6102389ae"
+// wantDemoFingerprint was recorded like wantFingerprint: from the code of
+// commit de617d0, again after the reservoir sampling of pending forecasts.
+const wantDemoFingerprint = "c46296bbfc44677bee35eb64056894c76bd70f23682d8d57b02ca00ba657d084"
 
 // TestDemoFingerprintUnchanged: replaying the demo fleet gives the same
 // bundles and alarms, byte for byte, as before the performance work.
