@@ -258,11 +258,11 @@ func writeDemoReport(w io.Writer, st []worker.SiteStats, alarms []conformal.Even
 	for _, l := range summaryLevels {
 		fmt.Fprintf(w, " %7s", fmt.Sprintf("q%.2f", l))
 	}
-	fmt.Fprintf(w, " %9s %7s\n", "settled", "alarms")
+	fmt.Fprintf(w, " %9s %13s %10s\n", "settled", "coverage_off", "raw_drift")
 	raisedBy := map[string]int{}
 	for _, e := range alarms {
 		if e.State == conformal.StateRaised {
-			raisedBy[e.Site]++
+			raisedBy[e.Site+"/"+e.Kind]++
 		}
 	}
 	for _, s := range st {
@@ -276,30 +276,32 @@ func writeDemoReport(w io.Writer, st []worker.SiteStats, alarms []conformal.Even
 				}
 			}
 		}
-		fmt.Fprintf(w, " %9d %7d\n", n, raisedBy[s.Site])
+		fmt.Fprintf(w, " %9d %13d %10d\n", n, raisedBy[s.Site+"/"+conformal.KindCoverage], raisedBy[s.Site+"/"+conformal.KindRawDrift])
 	}
 	sort.SliceStable(alarms, func(i, j int) bool { return alarms[i].EventTime.Before(alarms[j].EventTime) })
-	var firstFault *conformal.Event
 	raised, cleared := 0, 0
+	first := map[string]*conformal.Event{} // by kind, on the fault site after the fault
 	for i, e := range alarms {
-		if e.State == conformal.StateRaised {
-			raised++
-			if e.Site == fault.Site && !e.EventTime.Before(fault.From) && firstFault == nil {
-				firstFault = &alarms[i]
-			}
-		} else {
+		if e.State != conformal.StateRaised {
 			cleared++
+			continue
+		}
+		raised++
+		if e.Site == fault.Site && !e.EventTime.Before(fault.From) && first[e.Kind] == nil {
+			first[e.Kind] = &alarms[i]
 		}
 	}
-	fmt.Fprintf(w, "\nAlarms: %d raised, %d cleared, %d still up.\n", raised, cleared, activeAlarms(alarms))
+	fmt.Fprintf(w, "\nAlarms (one per site, kind, lead bucket and level): %d raised, %d cleared, %d still up.\n", raised, cleared, activeAlarms(alarms))
 	fmt.Fprintf(w, "Injected fault: %s output falls to %.0f%% from %s.\n", fault.Site, 100*fault.Factor, fault.From.Format(time.RFC3339))
-	if firstFault != nil {
-		fmt.Fprintf(w, "Fault caught: %s alarm %s on %s at %s (level %s, lead %s), %s after the fault: %s\n",
-			firstFault.Kind, firstFault.State, firstFault.Site, firstFault.EventTime.Format(time.RFC3339),
-			fmt.Sprintf("%.2f", firstFault.Level), firstFault.LeadBucket,
-			firstFault.EventTime.Sub(fault.From).Round(time.Minute), firstFault.Reason)
-	} else {
+	if len(first) == 0 {
 		fmt.Fprintf(w, "Fault NOT caught: no alarm was raised on %s after %s.\n", fault.Site, fault.From.Format(time.RFC3339))
+	}
+	for _, kind := range []string{conformal.KindRawDrift, conformal.KindCoverage} {
+		if e := first[kind]; e != nil {
+			fmt.Fprintf(w, "Fault caught: %s alarm raised on %s at %s (level %.2f, lead %s), %s after the fault: %s\n",
+				e.Kind, e.Site, e.EventTime.Format(time.RFC3339), e.Level, e.LeadBucket,
+				e.EventTime.Sub(fault.From).Round(time.Minute), e.Reason)
+		}
 	}
 	fmt.Fprintln(w, "\nThe fleet is invented. Forecasts feed trading and dispatch decisions: review alarms with a qualified person.")
 }

@@ -112,6 +112,9 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		logFormat  = fs.String("log-format", "console", "log format: console or json")
 		logLevel   = fs.String("log-level", "info", "log level: debug, info, warn, error")
 		maxPayload = fs.Int("max-input-bytes", 1<<20, "largest input message accepted, in bytes")
+		stale      = fs.Duration("stale-weather", 12*time.Hour, "raise weather_stale when a site's last weather run arrived longer ago (wall time; negative: off)")
+		gap        = fs.Duration("meter-gap", time.Hour, "raise meter_gap when a site's last reading arrived longer ago (wall time; negative: off)")
+		rejectRate = fs.Float64("reject-rate", 0.2, "raise reject_rate when more than this share of a site's messages is rejected")
 	)
 	conn.register(fs, "", "NATS server `URL`s, comma-separated (default: start an embedded server)")
 	wf.register(fs)
@@ -170,6 +173,7 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	pool, err := worker.NewPool(sites, cfg, worker.NewNATSOutput(nc), worker.PoolOptions{
 		Shards:  wf.shards,
 		Decoder: stream.Decoder{MaxBytes: *maxPayload},
+		Health:  worker.HealthOptions{StaleWeather: *stale, MeterGap: *gap, RejectRate: *rejectRate},
 		Logger:  log,
 		Metrics: m,
 	})
