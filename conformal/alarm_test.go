@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"errors"
 	"flag"
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"math"
 	"os"
 	"path/filepath"
@@ -15,25 +16,6 @@ import (
 )
 
 var update = flag.Bool("update", false, "rewrite the golden files under testdata/golden")
-
-// repoRoot walks up from the package directory to the one holding go.mod.
-func repoRoot(t *testing.T) string {
-	t.Helper()
-	dir, err := os.Getwd()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			return dir
-		}
-		parent := filepath.Dir(dir)
-		if parent == dir {
-			t.Fatal("no go.mod above the package directory")
-		}
-		dir = parent
-	}
-}
 
 // hover adds outcomes to w for steps steps so that its coverage swings
 // around c by about one outcome either way: misses once it rose above c by
@@ -242,7 +224,7 @@ func TestAlarmEventGolden(t *testing.T) {
 		t.Fatal(err)
 	}
 	got = append(got, '\n')
-	path := filepath.Join(repoRoot(t), "testdata", "golden", "alarm_event.json")
+	path := filepath.Join(sharedtest.Root(t), "testdata", "golden", "alarm_event.json")
 	if *update {
 		if err := os.MkdirAll(filepath.Dir(path), 0o755); err != nil {
 			t.Fatal(err)

@@ -6,6 +6,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"io"
 	"math"
 	"os"
@@ -818,31 +819,6 @@ func FuzzWeather(f *testing.F) {
 	})
 }
 
-// sharedData returns the folder of the open data sets (../shared/data from
-// the repository root), or skips the test when it is absent.
-func sharedData(t *testing.T) string {
-	t.Helper()
-	dir, err := os.Getwd()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			break
-		}
-		parent := filepath.Dir(dir)
-		if parent == dir {
-			t.Skip("no go.mod above the test directory; cannot locate ../shared/data")
-		}
-		dir = parent
-	}
-	data := filepath.Join(dir, "..", "shared", "data")
-	if _, err := os.Stat(data); err != nil {
-		t.Skipf("open data folder %s is absent (%v); skipping the real-data test", data, err)
-	}
-	return data
-}
-
 // csvRows reads a gzipped CSV file and calls fn for every row after the
 // header, at most limit rows (limit <= 0: all).
 func csvRows(t *testing.T, path string, limit int, fn func(header, row []string)) int {
@@ -884,7 +860,7 @@ func csvRows(t *testing.T, path string, limit int, fn func(header, row []string)
 // the plausibility checks must accept real measurements and real weather
 // model output. With -short only the first rows of each file are used.
 func TestDecodeSharedData(t *testing.T) {
-	root := sharedData(t)
+	root := sharedtest.Data(t, "")
 	limit := 0
 	if testing.Short() {
 		limit = 5000

@@ -3,10 +3,9 @@ package score
 import (
 	"encoding/csv"
 	"errors"
-	"io/fs"
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"math"
 	"os"
-	"path/filepath"
 	"strconv"
 	"testing"
 
@@ -207,39 +206,12 @@ func TestIntervalScoreMethodsChecks(t *testing.T) {
 	}
 }
 
-// sharedData returns the path of a file under ../shared/data relative to the
-// repository root, or skips the test when the data folder is absent.
-func sharedData(t *testing.T, rel string) string {
-	t.Helper()
-	dir, err := os.Getwd()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			break
-		}
-		parent := filepath.Dir(dir)
-		if parent == dir {
-			t.Fatal("no go.mod above the package directory")
-		}
-		dir = parent
-	}
-	path := filepath.Join(dir, "..", "shared", "data", rel)
-	if _, err := os.Stat(path); errors.Is(err, fs.ErrNotExist) {
-		t.Skipf("shared data %s is absent (expected at ../shared/data from the repository root); skipping", rel)
-	} else if err != nil {
-		t.Fatal(err)
-	}
-	return path
-}
-
 // TestEngelSummedPinball holds the summed pinball loss of the published
 // quantile regression fits of foodexp ~ income on the Engel data to
 // METHODS.md section 3 [paper: R quantreg documentation; computed]. The
 // coefficients are printed to 5 decimals, so the sums are held to 0.01.
 func TestEngelSummedPinball(t *testing.T) {
-	f, err := os.Open(sharedData(t, "reference/engel.csv"))
+	f, err := os.Open(sharedtest.Data(t, "reference/engel.csv"))
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -5,6 +5,7 @@ import (
 	"compress/gzip"
 	"errors"
 	"flag"
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"io"
 	"math"
 	"os"
@@ -444,25 +445,6 @@ func TestDeterministic(t *testing.T) {
 	}
 }
 
-// repoRoot walks up from the package folder to the folder holding go.mod.
-func repoRoot(t *testing.T) string {
-	t.Helper()
-	dir, err := os.Getwd()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			return dir
-		}
-		parent := filepath.Dir(dir)
-		if parent == dir {
-			t.Fatal("no go.mod above the test folder")
-		}
-		dir = parent
-	}
-}
-
 // content returns a file's bytes, decompressed when it is gzipped: the demo
 // is compared on content, so that a change in the compressor alone does not
 // fail the test.
@@ -489,7 +471,7 @@ func content(t *testing.T, path string) []byte {
 // TestDemoUpToDate regenerates the default fleet and compares it with
 // testdata/demo; with -update it rewrites testdata/demo instead.
 func TestDemoUpToDate(t *testing.T) {
-	demoDir := filepath.Join(repoRoot(t), "testdata", "demo")
+	demoDir := filepath.Join(sharedtest.Root(t), "testdata", "demo")
 	h := Fleet(FleetOptions{})
 	if *update {
 		if err := history.Write(demoDir, h); err != nil {

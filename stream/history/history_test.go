@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"compress/gzip"
 	"errors"
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"io"
 	"io/fs"
 	"math"
@@ -16,31 +17,6 @@ import (
 
 	"github.com/plumb-forecast/plumb/model"
 )
-
-// sharedData returns ../shared/data relative to the repository root (the
-// folder holding go.mod), skipping the test when it is absent.
-func sharedData(t testing.TB, name string) string {
-	t.Helper()
-	dir, err := os.Getwd()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			break
-		}
-		parent := filepath.Dir(dir)
-		if parent == dir {
-			t.Skip("no go.mod above the test folder; cannot find ../shared/data")
-		}
-		dir = parent
-	}
-	p := filepath.Join(dir, "..", "shared", "data", name)
-	if _, err := os.Stat(filepath.Join(p, SitesFile)); err != nil {
-		t.Skipf("shared data set %s absent (%v); it lives outside the repository at ../shared/data", name, err)
-	}
-	return p
-}
 
 func mustTime(t testing.TB, s string) time.Time {
 	t.Helper()
@@ -103,7 +79,7 @@ func TestLoadSharedData(t *testing.T) {
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
-			dir := sharedData(t, tc.name)
+			dir := sharedtest.Data(t, tc.name)
 			h, err := Load(dir, LoadOptions{})
 			if err != nil {
 				t.Fatal(err)
@@ -308,7 +284,7 @@ func TestWriteLoadRoundTrip(t *testing.T) {
 func TestRoundTripSharedData(t *testing.T) {
 	for _, name := range []string{"serf-pv-15min", "gefcom2014-solar"} {
 		t.Run(name, func(t *testing.T) {
-			h, err := Load(sharedData(t, name), LoadOptions{})
+			h, err := Load(sharedtest.Data(t, name), LoadOptions{})
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -770,7 +746,7 @@ func FuzzLoadMeter(f *testing.F) {
 }
 
 func BenchmarkLoadGefcomWind(b *testing.B) {
-	dir := sharedData(b, "gefcom2012-wind")
+	dir := sharedtest.Data(b, "gefcom2012-wind")
 	b.ReportAllocs()
 	for b.Loop() {
 		if _, err := Load(dir, LoadOptions{}); err != nil {

@@ -3,9 +3,8 @@ package backtest
 import (
 	"bytes"
 	"context"
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"math"
-	"os"
-	"path/filepath"
 	"reflect"
 	"testing"
 	"time"
@@ -17,30 +16,6 @@ import (
 	"github.com/plumb-forecast/plumb/stream"
 	"github.com/plumb-forecast/plumb/stream/history"
 )
-
-// sharedData returns ../shared/data/<name> next to the repository, or skips.
-func sharedData(t *testing.T, name string) string {
-	t.Helper()
-	dir, err := os.Getwd()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			break
-		}
-		parent := filepath.Dir(dir)
-		if parent == dir {
-			t.Fatal("no go.mod above the test")
-		}
-		dir = parent
-	}
-	p := filepath.Join(dir, "..", "shared", "data", name)
-	if _, err := os.Stat(p); err != nil {
-		t.Skipf("open data set %s not found at %s: skipping (CI has it)", name, p)
-	}
-	return p
-}
 
 func day(s string) time.Time {
 	t, err := time.Parse("2006-01-02", s)
@@ -137,7 +112,7 @@ func TestGEFCom2014SolarClimatology(t *testing.T) {
 	if testing.Short() {
 		t.Skip("a year of three sites")
 	}
-	dir := sharedData(t, "gefcom2014-solar")
+	dir := sharedtest.Data(t, "gefcom2014-solar")
 	h, err := history.Load(dir, history.LoadOptions{})
 	if err != nil {
 		t.Fatal(err)

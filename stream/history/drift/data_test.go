@@ -2,8 +2,7 @@ package drift
 
 import (
 	"errors"
-	"os"
-	"path/filepath"
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"strings"
 	"testing"
 	"time"
@@ -11,32 +10,6 @@ import (
 	"github.com/plumb-forecast/plumb/model"
 	"github.com/plumb-forecast/plumb/stream/history"
 )
-
-// sharedData returns the folder of an open data set, ../shared/data/<name>
-// relative to the repository root (the folder holding go.mod), skipping the
-// test when it is absent.
-func sharedData(t *testing.T, name string) string {
-	t.Helper()
-	dir, err := os.Getwd()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			break
-		}
-		parent := filepath.Dir(dir)
-		if parent == dir {
-			t.Skip("no go.mod above the test folder, so no ../shared/data to test on")
-		}
-		dir = parent
-	}
-	p := filepath.Join(dir, "..", "shared", "data", name)
-	if _, err := os.Stat(filepath.Join(p, history.SitesFile)); err != nil {
-		t.Skipf("open data set %s absent (%v); it lives outside the repository at ../shared/data", name, err)
-	}
-	return p
-}
 
 // TestSharedData applies the standard scenarios to the three open data sets
 // and checks every reading and run of each result against the input.
@@ -67,7 +40,7 @@ func TestSharedData(t *testing.T) {
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
-			dir := sharedData(t, tt.name)
+			dir := sharedtest.Data(t, tt.name)
 			h, err := history.Load(dir, history.LoadOptions{})
 			if err != nil {
 				t.Fatal(err)
