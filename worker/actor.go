@@ -192,6 +192,7 @@ type Actor struct {
 	// and the raw then the published quantiles at recQ[r/recChunk], from
 	// (r%recChunk)*2*len(levels).
 	recX    [][]pendingX
+	recL    [][]pendingX // the latest forecast's features, which the forecaster learns from
 	recQ    [][]float64
 	nrec    int32   // records made
 	freeRec []int32 // records no longer in use
@@ -462,6 +463,11 @@ func (a *Actor) record(r int32) (x *pendingX, raw, pub []float64) {
 	return &a.recX[c][k], q[:nl:nl], q[nl:]
 }
 
+// latest returns the features of the latest forecast of record r.
+func (a *Actor) latest(r int32) *pendingX {
+	return &a.recL[r/recChunk][r%recChunk]
+}
+
 // newRecord returns a record number not in use.
 func (a *Actor) newRecord() int32 {
 	if k := len(a.freeRec); k > 0 {
@@ -471,6 +477,7 @@ func (a *Actor) newRecord() int32 {
 	}
 	if a.nrec%recChunk == 0 {
 		a.recX = append(a.recX, make([]pendingX, recChunk))
+		a.recL = append(a.recL, make([]pendingX, recChunk))
 		a.recQ = append(a.recQ, make([]float64, recChunk*2*len(a.cfg.Levels)))
 	}
 	a.nrec++
@@ -514,7 +521,17 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 			continue
 		}
 		px, raw, pub := a.record(rec)
-		if px.night || r.Curtailed {
+		if r.Curtailed {
+			continue
+		}
+		if lx := a.latest(rec); !lx.night {
+			// The forecaster learns from the latest forecast of the
+			// bucket, issued with the most information.
+			x := &a.learnX[b]
+			a.expand(x, lx, tg.minutes, b)
+			a.learn = append(a.learn, x)
+		}
+		if px.night {
 			continue
 		}
 		pit := pitOf(a.cfg.Levels, raw, y)
@@ -540,9 +557,6 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 			}
 			a.checkAlarm(c, b, j, at)
 		}
-		x := &a.learnX[b]
-		a.expand(x, px, tg.minutes, b)
-		a.learn = append(a.learn, x)
 	}
 	if len(a.learn) > 0 {
 		a.fc.Learn(y, a.learn) // buckets ascend: shortest lead first
@@ -849,6 +863,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		b.Steps[i] = model.Step{ValidStart: t, ValidMinutes: step, LeadMinutes: lead}
 		rec, fresh := a.pendingFor(t, step, bucket)
 		px, raw, pub := a.record(rec)
+		lx := a.latest(rec)
 		issued := int32(0)
 		if !fresh {
 			issued = px.issued
@@ -862,6 +877,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		a.features(x, t, lead, bucket, step)
 		keep(px, x)
 		px.issued = issued + 1
+		keep(lx, x)
 		row := b.Row(i)
 		// Every calibrator of the bucket is asked, at night too: a
 		// calibrator may note what it issued (conformal.Split does).
