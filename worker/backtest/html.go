@@ -102,6 +102,7 @@ const (
 	htmlHeadFan         = "Fan chart"
 	htmlHeadSites       = "Scores by site"
 	htmlHeadLeads       = "Scores by lead"
+	htmlHeadAlarms      = "Alarms raised"
 	htmlHeadRead        = "How to read this"
 )
 
@@ -157,6 +158,7 @@ type htmlPage struct {
 	Sites    []htmlTable
 	SiteNote string
 	Leads    htmlTable
+	Alarms   htmlTable
 	Schema   int
 }
 
@@ -217,7 +219,7 @@ func htmlBuildPage(r *Report) (*htmlPage, error) {
 		Heads: map[string]string{
 			"compare": htmlHeadCompare, "reliability": htmlHeadReliability, "pit": htmlHeadPIT,
 			"weekly": htmlHeadWeekly, "width": htmlHeadWidth, "fan": htmlHeadFan,
-			"sites": htmlHeadSites, "leads": htmlHeadLeads, "read": htmlHeadRead,
+			"sites": htmlHeadSites, "leads": htmlHeadLeads, "alarms": htmlHeadAlarms, "read": htmlHeadRead,
 		},
 		DayAheadLabel: fmt.Sprintf("Day-ahead (issued %02d:00 UTC, leads under 24 h)", r.DayAheadHour),
 	}
@@ -233,6 +235,7 @@ func htmlBuildPage(r *Report) (*htmlPage, error) {
 		pg.Variants = append(pg.Variants, htmlVariantLine{Name: v.Name, Role: role, Model: v.Model, Calibrator: v.Calibrator})
 	}
 	pg.Compare = htmlCompare(r)
+	pg.Alarms = htmlAlarms(r)
 
 	var err error
 	draw := func(fig *svgFigure, note, label, caption string) htmlFigure {
@@ -693,6 +696,27 @@ func htmlSites(r *Report) ([]htmlTable, string) {
 
 // htmlLeads is the per-lead-bucket table of the main variant's intraday
 // view.
+// htmlAlarms tables the alarms each calibrated variant raised while scored
+// forecasts were issued (one alarm per site, kind, lead bucket and level).
+func htmlAlarms(r *Report) htmlTable {
+	t := htmlTable{Header: []string{"Variant", "Site", "Kind", "Raised", "First raised (UTC)"}}
+	for _, v := range r.Variants {
+		if v.Reference {
+			continue
+		}
+		for _, a := range v.Alarms {
+			t.Rows = append(t.Rows, htmlRow{Cells: []htmlCell{
+				{Text: v.Name, Class: "name", Head: true}, {Text: a.Site}, {Text: a.Kind},
+				{Text: htmlInt(a.Raised), Class: "num"}, {Text: a.First.UTC().Format("2006-01-02 15:04")},
+			}})
+		}
+	}
+	if len(t.Rows) == 0 {
+		t.Note = "No alarm was raised."
+	}
+	return t
+}
+
 func htmlLeads(r *Report) htmlTable {
 	t := htmlTable{}
 	if len(r.Variants) == 0 {
@@ -849,6 +873,10 @@ td.best,td.flag,thead th,tr.main th.name{-webkit-print-color-adjust:exact;print-
 <section id="leads">
 <h2>{{index .Heads "leads"}}</h2>
 {{template "table" .Leads}}
+</section>
+<section id="alarms">
+<h2>{{index .Heads "alarms"}}</h2>
+{{template "table" .Alarms}}
 </section>
 <section id="read">
 <h2>{{index .Heads "read"}}</h2>

@@ -276,10 +276,16 @@ func TestWriteJSONRejectsNonFinite(t *testing.T) {
 
 func TestWriteHTMLContents(t *testing.T) {
 	r := htmlTestFull()
+	// An invented alarm count, to check the alarm table.
+	r.Variants[0].Alarms = []AlarmCount{{Site: r.Sites[0], Kind: "raw_drift", Raised: 7,
+		First: time.Date(2026, 3, 20, 12, 45, 0, 0, time.UTC)}}
 	doc := htmlRender(t, r)
 	text := html.UnescapeString(doc)
+	if !strings.Contains(text, "raw_drift") || !strings.Contains(text, "2026-03-20 12:45") {
+		t.Error("alarm table lacks the alarm")
+	}
 	for _, h := range []string{htmlHeadCompare, htmlHeadReliability, htmlHeadPIT, htmlHeadWeekly, htmlHeadWidth,
-		htmlHeadFan, htmlHeadSites, htmlHeadLeads, htmlHeadRead} {
+		htmlHeadFan, htmlHeadSites, htmlHeadLeads, htmlHeadAlarms, htmlHeadRead} {
 		if !strings.Contains(doc, "<h2>"+h+"</h2>") {
 			t.Errorf("no section heading %q", h)
 		}
