@@ -157,12 +157,8 @@ func FuzzWindowUnmarshal(f *testing.F) {
 	f.Add([]byte{1})
 	f.Fuzz(func(t *testing.T, data []byte) {
 		var w Window
-		if w.UnmarshalBinary(data) != nil {
+		if !roundTrip(t, &w, data) {
 			return
-		}
-		again, _ := w.MarshalBinary()
-		if !bytes.Equal(again, data) {
-			t.Errorf("accepted % x but encodes it as % x", data, again)
 		}
 		w.Add(true) // a restored window must be usable
 	})
