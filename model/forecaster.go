@@ -27,6 +27,13 @@ type Features struct {
 	Night bool
 	// HourUTC is the hour of day of the interval's middle, 0 <= HourUTC < 24.
 	HourUTC float64
+	// Weather is the row of the weather run in force that covers the
+	// interval, nil when there is none; WeatherVars names its Values (the
+	// run's Vars). Both belong to the run, which is never changed once
+	// applied: a forecaster may keep the pointers (as a cache key, say) but
+	// must not write through them.
+	Weather     *WeatherRow
+	WeatherVars []string
 }
 
 // Forecaster produces raw (uncalibrated) quantiles for one site and learns

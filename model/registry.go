@@ -12,20 +12,23 @@ var ErrUnknownModel = errors.New("unknown model")
 // constructor makes one named forecaster with its default options.
 type constructor struct {
 	name string
-	make func(site Site, buckets Buckets) Forecaster
+	make func(site Site, setup Setup) Forecaster
 }
 
 // constructors lists the forecasters New knows, sorted by name.
 func constructors() []constructor {
 	return []constructor{
-		{"baseline", func(s Site, b Buckets) Forecaster {
-			return NewBaseline(s.Kind, BaselineOptions{Buckets: b})
+		{"baseline", func(s Site, u Setup) Forecaster {
+			return NewBaseline(s.Kind, BaselineOptions{Buckets: u.Buckets})
 		}},
-		{"climatology", func(Site, Buckets) Forecaster {
+		{"climatology", func(Site, Setup) Forecaster {
 			return NewClimatology(ClimatologyOptions{})
 		}},
-		{"persistence", func(_ Site, b Buckets) Forecaster {
-			return NewPersistence(PersistenceOptions{Buckets: b})
+		{"persistence", func(_ Site, u Setup) Forecaster {
+			return NewPersistence(PersistenceOptions{Buckets: u.Buckets})
+		}},
+		{"stack", func(s Site, u Setup) Forecaster {
+			return NewStack(s, u, StackOptions{})
 		}},
 	}
 }
@@ -46,9 +49,16 @@ func Names() []string {
 // name. An unknown name gives an error wrapping ErrUnknownModel that lists
 // the known names.
 func New(name string, site Site, buckets Buckets) (Forecaster, error) {
+	return Make(name, site, Setup{Buckets: buckets})
+}
+
+// Make is New with the whole Setup: forecasters that learn a grid of
+// levels (Stack) learn the worker's levels.
+func Make(name string, site Site, setup Setup) (Forecaster, error) {
+	setup = setup.withDefaults()
 	for _, c := range constructors() {
 		if c.name == name {
-			return c.make(site, buckets), nil
+			return c.make(site, setup), nil
 		}
 	}
 	return nil, fmt.Errorf("model: %w %q (known: %s)", ErrUnknownModel, name, strings.Join(Names(), ", "))

@@ -25,6 +25,18 @@ type ReplayOptions struct {
 	// Now and Sleep give wall time for pacing; nil means the real clock.
 	Now   func() time.Time
 	Sleep func(ctx context.Context, d time.Duration) error
+	// Publisher, if set, sends the messages instead of core NATS (e.g.
+	// jet.ReplayPublisher: to the input stream, with message ids).
+	Publisher Publisher
+}
+
+// Publisher sends the inputs of a replay.
+type Publisher interface {
+	// Publish sends one encoded input of ev on subject; data is only valid
+	// during the call.
+	Publish(ev *history.Event, subject string, data []byte) error
+	// Flush waits until everything published so far is stored.
+	Flush(ctx context.Context) error
 }
 
 // ReplayStats counts what Replay published.
@@ -94,13 +106,19 @@ func Replay(ctx context.Context, nc *nats.Conn, events []history.Event, o Replay
 		default:
 			continue
 		}
-		if err := nc.Publish(subj, buf); err != nil {
+		var err error
+		if o.Publisher != nil {
+			err = o.Publisher.Publish(&events[i], subj, buf)
+		} else {
+			err = nc.Publish(subj, buf)
+		}
+		if err != nil {
 			return st, fmt.Errorf("replay: publish %s: %w", subj, err)
 		}
 		st.Bytes += int64(len(buf))
 		st.Last = ev.Time
 		if (i+1)%o.FlushEvery == 0 {
-			if err := flush(ctx, nc); err != nil {
+			if err := flushAll(ctx, nc, o.Publisher); err != nil {
 				return st, err
 			}
 		}
@@ -108,7 +126,19 @@ func Replay(ctx context.Context, nc *nats.Conn, events []history.Event, o Replay
 			o.Progress(i+1, len(events), ev.Time)
 		}
 	}
-	return st, flush(ctx, nc)
+	return st, flushAll(ctx, nc, o.Publisher)
+}
+
+func flushAll(ctx context.Context, nc *nats.Conn, p Publisher) error {
+	if p != nil {
+		ctx, cancel := context.WithTimeout(ctx, time.Minute)
+		defer cancel()
+		if err := p.Flush(ctx); err != nil {
+			return fmt.Errorf("replay: flush: %w", err)
+		}
+		return nil
+	}
+	return flush(ctx, nc)
 }
 
 // flush waits for the server to have every message published so far.

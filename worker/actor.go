@@ -141,6 +141,8 @@ type pendingX struct {
 	issued                           int32 // forecasts issued for the interval in the bucket so far
 	avail, driver, runAge, lastPower float64
 	night                            bool
+	row                              *model.WeatherRow // Features.Weather
+	run                              *model.WeatherRun // its run, for Features.WeatherVars
 }
 
 // recChunk is how many pending records a chunk of the record store holds.
@@ -198,6 +200,7 @@ type Actor struct {
 	freeRec []int32 // records no longer in use
 	// A record for a step whose pending forecast stays (closerLead).
 	spareX pendingX
+	xRun   *model.WeatherRun // the run of a.x.Weather (features sets both)
 	spareQ []float64
 
 	cells  []cell // [bucket*len(levels)+level]
@@ -486,9 +489,10 @@ func (a *Actor) newRecord() int32 {
 
 // keep stores x, the features of a step issued in a lead bucket, in a
 // pending record's features.
-func keep(px *pendingX, x *model.Features) {
+func keep(px *pendingX, x *model.Features, run *model.WeatherRun) {
 	*px = pendingX{validStart: x.ValidStart, lead: x.LeadMinutes, avail: x.Availability,
-		driver: x.Driver, runAge: x.RunAgeMinutes, lastPower: x.LastPowerMW, night: x.Night}
+		driver: x.Driver, runAge: x.RunAgeMinutes, lastPower: x.LastPowerMW, night: x.Night,
+		row: x.Weather, run: run}
 }
 
 // expand writes to x the features a pending record of a target of the
@@ -505,6 +509,10 @@ func (a *Actor) expand(x *model.Features, px *pendingX, minutes, bucket int) {
 		RunAgeMinutes: px.runAge,
 		LastPowerMW:   px.lastPower,
 		Night:         px.night,
+		Weather:       px.row,
+	}
+	if px.run != nil {
+		x.WeatherVars = px.run.Vars
 	}
 	h, m := hourMinute(px.validStart, time.Duration(minutes)*time.Minute/2)
 	x.HourUTC = float64(h) + float64(m)/60
@@ -682,6 +690,7 @@ func (a *Actor) features(x *model.Features, t time.Time, lead, bucket, step int)
 	x.Driver = math.NaN()
 	x.RunAgeMinutes = math.NaN()
 	x.Night = false
+	x.Weather, x.WeatherVars, a.xRun = nil, nil, nil
 	h, m := hourMinute(t, time.Duration(step)*time.Minute/2)
 	x.HourUTC = float64(h) + float64(m)/60 // of the middle of the interval
 	for i := len(a.runs) - 1; i >= 0; i-- {
@@ -710,6 +719,7 @@ func (a *Actor) features(x *model.Features, t time.Time, lead, bucket, step int)
 			cur.age = a.now.Sub(r.IssuedAt).Minutes()
 		}
 		x.RunAgeMinutes = cur.age
+		x.Weather, x.WeatherVars, a.xRun = row, r.Vars, r.WeatherRun
 		switch {
 		case r.driver >= 0 && !math.IsNaN(row.Values[r.driver]):
 			x.Driver = row.Values[r.driver]
@@ -875,9 +885,9 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		}
 		x := &a.x
 		a.features(x, t, lead, bucket, step)
-		keep(px, x)
+		keep(px, x, a.xRun)
 		px.issued = issued + 1
-		keep(lx, x)
+		keep(lx, x, a.xRun)
 		row := b.Row(i)
 		// Every calibrator of the bucket is asked, at night too: a
 		// calibrator may note what it issued (conformal.Split does).

@@ -377,7 +377,21 @@ const warmDays = 10
 // with warmDays of invented data, and its feed.
 func warmActor(tb testing.TB, site model.Site, steps, levels int) (*Actor, *benchGen) {
 	tb.Helper()
-	a, err := NewActor(site, Config{Levels: levelsOf(levels), HorizonMinutes: steps * 15}.WithDefaults())
+	return warmActorWith(tb, site, steps, levels, "baseline")
+}
+
+// warmActorWith is warmActor with the named forecaster (model.Make).
+func warmActorWith(tb testing.TB, site model.Site, steps, levels int, forecaster string) (*Actor, *benchGen) {
+	tb.Helper()
+	cfg := Config{Levels: levelsOf(levels), HorizonMinutes: steps * 15}.WithDefaults()
+	cfg.NewForecaster = func(s model.Site) model.Forecaster {
+		f, err := model.Make(forecaster, s, model.Setup{Buckets: cfg.Buckets, Levels: cfg.Levels})
+		if err != nil {
+			tb.Fatal(err)
+		}
+		return f
+	}
+	a, err := NewActor(site, cfg)
 	if err != nil {
 		tb.Fatal(err)
 	}
@@ -449,6 +463,55 @@ func BenchmarkRefreshEncode(b *testing.B) {
 				}
 			}
 			b.SetBytes(int64(buf.Len()))
+		})
+	}
+}
+
+// BenchmarkRefreshEncodeStack is BenchmarkRefreshEncode with the stack
+// forecaster, its forest grown (warmDays of 15-minute readings give it
+// more rows than it needs for the first one).
+func BenchmarkRefreshEncodeStack(b *testing.B) {
+	for _, site := range testSites() {
+		b.Run(site.ID+"/"+sizeName(144, 19), func(b *testing.B) {
+			a, g := warmActorWith(b, site, 144, 19, "stack")
+			if n, err := a.fc.(*model.Stack).Fits(); n == 0 {
+				b.Fatalf("no forest grown while warming (error %v)", err)
+			}
+			enc := stream.NewBundleEncoder()
+			var buf bytes.Buffer
+			if err := enc.Encode(&buf, a.Refresh()); err != nil {
+				b.Fatal(err)
+			}
+			b.ReportAllocs()
+			for b.Loop() {
+				b.StopTimer()
+				if err := g.step(a); err != nil {
+					b.Fatal(err)
+				}
+				b.StartTimer()
+				buf.Reset()
+				if err := enc.Encode(&buf, a.Refresh()); err != nil {
+					b.Fatal(err)
+				}
+			}
+		})
+	}
+}
+
+// BenchmarkSettleStack is BenchmarkSettle with the stack forecaster.
+func BenchmarkSettleStack(b *testing.B) {
+	for _, site := range testSites() {
+		b.Run(site.ID+"/"+sizeName(144, 19), func(b *testing.B) {
+			a, g := warmActorWith(b, site, 144, 19, "stack")
+			b.ReportAllocs()
+			for b.Loop() {
+				if err := g.step(a); err != nil {
+					b.Fatal(err)
+				}
+				b.StopTimer()
+				a.Refresh()
+				b.StartTimer()
+			}
 		})
 	}
 }

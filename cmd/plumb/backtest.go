@@ -5,6 +5,7 @@ import (
 	"context"
 	"fmt"
 	"io"
+	"math"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -61,6 +62,9 @@ func runBacktest(ctx context.Context, args []string, stdout, stderr io.Writer) e
 		calibrators = fs.String("calibrators", "aci", "calibrators to run with each model, comma-separated: "+strings.Join(conformal.Methods(), ", "))
 		gamma       = fs.Float64("gamma", 0.005, "step size of the aci calibrator")
 		hour        = fs.Int("day-ahead-hour", 0, "UTC `hour` of the forecasts in the day-ahead view")
+		issueHours  = fs.String("issue-hours", "", "UTC issue `hours` of the day-ahead view, a list such as 0,12 (each weather run); overrides --day-ahead-hour")
+		viewHorizon = fs.Duration("view-horizon", 24*time.Hour, "leads the day-ahead view keeps: under this `duration`")
+		bandsArg    = fs.String("bands", "", "lead bands of the by-lead tables, as `edges` in hours such as 0,6,24,48 (default: the worker's lead buckets)")
 		costShort   = fs.Float64("cost-short", backtest.DefaultCostShort, "imbalance cost per MWh delivered short of the bid (default illustrative)")
 		costLong    = fs.Float64("cost-long", backtest.DefaultCostLong, "imbalance cost per MWh delivered beyond the bid (default illustrative)")
 		currency    = fs.String("currency", "EUR", "currency of the costs")
@@ -100,6 +104,20 @@ func runBacktest(ctx context.Context, args []string, stdout, stderr io.Writer) e
 	if o.To, err = parseTimeFlag("to", *to); err != nil {
 		return err
 	}
+	if *issueHours != "" {
+		if o.IssueHours, err = parseHours("issue-hours", *issueHours); err != nil {
+			return err
+		}
+	}
+	if *viewHorizon <= 0 {
+		return fmt.Errorf("--view-horizon %s must be positive", *viewHorizon)
+	}
+	o.ViewHorizon = *viewHorizon
+	if *bandsArg != "" {
+		if o.Bands, err = parseBands(*bandsArg); err != nil {
+			return err
+		}
+	}
 	for _, m := range strings.Split(*models, ",") {
 		for _, c := range strings.Split(*calibrators, ",") {
 			o.Variants = append(o.Variants, backtest.VariantSpec{Model: strings.TrimSpace(m), Calibrator: strings.TrimSpace(c)})
@@ -114,12 +132,8 @@ func runBacktest(ctx context.Context, args []string, stdout, stderr io.Writer) e
 			o.SaveHours = append(o.SaveHours, h)
 		}
 	default:
-		for _, f := range strings.Split(*saveHours, ",") {
-			h, err := strconv.Atoi(strings.TrimSpace(f))
-			if err != nil || h < 0 || h > 23 {
-				return fmt.Errorf("--save-hours: %q is not an hour 0..23", f)
-			}
-			o.SaveHours = append(o.SaveHours, h)
+		if o.SaveHours, err = parseHours("save-hours", *saveHours); err != nil {
+			return err
 		}
 	}
 
@@ -219,7 +233,7 @@ func printSummary(w io.Writer, r *backtest.Report) {
 		for _, vw := range []struct {
 			label string
 			s     backtest.Scores
-		}{{fmt.Sprintf("day-ahead %02dh", r.DayAheadHour), v.DayAhead.All}, {"intraday", v.Intraday.All}} {
+		}{{dayAheadLabel(r), v.DayAhead.All}, {"intraday", v.Intraday.All}} {
 			cov80, cov90, is90 := "-", "-", "-"
 			for _, iv := range vw.s.Intervals {
 				switch iv.Nominal {
@@ -235,6 +249,31 @@ func printSummary(w io.Writer, r *backtest.Report) {
 		}
 	}
 	tw.Flush()
+	for _, view := range []string{dayAheadLabel(r), "intraday"} {
+		fmt.Fprintf(w, "\nmean pinball by lead, %s view\n", view)
+		tw = tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+		fmt.Fprint(tw, "variant\t")
+		for _, b := range r.Buckets {
+			fmt.Fprintf(tw, "%s\t", b)
+		}
+		fmt.Fprintln(tw)
+		for _, v := range r.Variants {
+			vw := v.Intraday
+			if view != "intraday" {
+				vw = v.DayAhead
+			}
+			fmt.Fprintf(tw, "%s\t", v.Name)
+			for _, s := range vw.ByBucket {
+				if s.N == 0 {
+					fmt.Fprint(tw, "-\t")
+				} else {
+					fmt.Fprintf(tw, "%.5g\t", s.Pinball)
+				}
+			}
+			fmt.Fprintln(tw)
+		}
+		tw.Flush()
+	}
 	for _, v := range r.Variants {
 		if v.Reference || len(v.Alarms) == 0 {
 			continue
@@ -256,4 +295,50 @@ func printSummary(w io.Writer, r *backtest.Report) {
 	if r.Refused > 0 {
 		fmt.Fprintf(w, "\n%d inputs were refused by the site actors (late, duplicate or too far ahead)\n", r.Refused)
 	}
+}
+
+// dayAheadLabel names the day-ahead view by its issue hours: "day-ahead
+// 00h" or "day-ahead 00h,12h".
+func dayAheadLabel(r *backtest.Report) string {
+	hours := r.IssueHours
+	if len(hours) == 0 {
+		hours = []int{r.DayAheadHour}
+	}
+	hs := make([]string, len(hours))
+	for i, h := range hours {
+		hs[i] = fmt.Sprintf("%02dh", h)
+	}
+	return "day-ahead " + strings.Join(hs, ",")
+}
+
+// parseHours reads a comma-separated list of UTC hours 0..23.
+func parseHours(flagName, s string) ([]int, error) {
+	var out []int
+	for _, f := range strings.Split(s, ",") {
+		h, err := strconv.Atoi(strings.TrimSpace(f))
+		if err != nil || h < 0 || h > 23 {
+			return nil, fmt.Errorf("--%s: %q is not an hour 0..23", flagName, f)
+		}
+		out = append(out, h)
+	}
+	return out, nil
+}
+
+// parseBands reads lead band edges in hours ("0,6,24,48"), increasing from 0.
+func parseBands(s string) (model.Buckets, error) {
+	var b model.Buckets
+	for i, f := range strings.Split(s, ",") {
+		h, err := strconv.ParseFloat(strings.TrimSpace(f), 64)
+		m := int(math.Round(h * 60))
+		switch {
+		case err != nil || h < 0:
+			return b, fmt.Errorf("--bands: %q is not a lead in hours", f)
+		case i == 0 && m != 0:
+			return b, fmt.Errorf("--bands: the first edge must be 0, not %q", f)
+		case i > 0 && m <= b.Edges[i-1]:
+			return b, fmt.Errorf("--bands: edges must increase (%q)", f)
+		}
+		b.Edges = append(b.Edges, m)
+	}
+	return b, nil
 }

@@ -7,10 +7,12 @@ import (
 	"strings"
 	"time"
 
+	"github.com/nats-io/nats.go/jetstream"
 	"github.com/schollz/progressbar/v3"
 
 	"github.com/plumb-forecast/plumb/stream"
 	"github.com/plumb-forecast/plumb/stream/history"
+	"github.com/plumb-forecast/plumb/stream/jet"
 )
 
 const replayHelp = `plumb replay: publish a history folder as live inputs.
@@ -37,6 +39,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		from     = fs.String("from", "", "publish events at or after this `time` (RFC 3339 or YYYY-MM-DD)")
 		to       = fs.String("to", "", "publish events before this `time` (RFC 3339 or YYYY-MM-DD)")
 		quiet    = fs.Bool("quiet", false, "no progress bar")
+		durable  = fs.Bool("durable", false, "publish to the input stream (JetStream) with message ids, waiting for its acks; the stream must exist (a worker run with --durable makes it)")
 	)
 	conn.register(fs, defaultURL, "NATS server `URL`s, comma-separated")
 	if err := parse(fs, args); err != nil {
@@ -79,6 +82,16 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	defer nc.Close()
 
 	ro := stream.ReplayOptions{Speed: *speed}
+	if *durable {
+		js, err := jetstream.New(nc)
+		if err != nil {
+			return err
+		}
+		if _, err := js.Stream(ctx, jet.InputStream); err != nil {
+			return fmt.Errorf("--durable: input stream %s: %w (start a worker with --durable first)", jet.InputStream, err)
+		}
+		ro.Publisher = jet.NewReplayPublisher(js)
+	}
 	if !*quiet {
 		bar := progressbar.NewOptions(len(events),
 			progressbar.OptionSetWriter(stderr),

@@ -24,7 +24,7 @@
 // lead bucket of model.DefaultBuckets (a lead drawn at random within the
 // bucket, in whole intervals), with the features the actor would build:
 // the driver as a weather run would give it (the truth plus an error growing
-// with lead), the latest reading at issue, the sun's state, the hour of day.
+// with lead; as Driver and as the one variable of a weather row), the latest reading at issue, the sun's state, the hour of day.
 // When an interval's outcome is known, Learn is called once with the features
 // of every forecast issued for it, shortest lead first, unless the sun was
 // down over the interval (PV), as the actor does; the features are then
@@ -181,6 +181,13 @@ func generate(site model.Site, seed uint64) *history {
 			h.y[i] = site.CapacityMW * (windCurve(latent[i]) + 0.03*rng.NormFloat64())
 		}
 	}
+	// Each forecast's driver comes as the one variable of a weather row of
+	// its own, as a run would give it.
+	vars := []string{"wind_ms"}
+	if pv {
+		vars = []string{"ghi_wm2"}
+	}
+	rows := make([]model.WeatherRow, n*nb)
 	for i := range n {
 		t0 := startTime().Add(time.Duration(i) * step)
 		mid := t0.Add(step / 2)
@@ -222,7 +229,10 @@ func generate(site model.Site, seed uint64) *history {
 				LastPowerMW:   last,
 				Night:         h.night[i],
 				HourUTC:       float64(mid.Hour()) + float64(mid.Minute())/60,
+				Weather:       &rows[k],
+				WeatherVars:   vars,
 			}
+			rows[k] = model.WeatherRow{ValidStart: t0, ValidMinutes: stepMinutes, Values: []float64{driver}}
 		}
 	}
 	return h

@@ -24,3 +24,9 @@ func TestPersistence(t *testing.T) {
 		return model.NewPersistence(model.PersistenceOptions{})
 	})
 }
+
+func TestStack(t *testing.T) {
+	modeltest.Run(t, func(s model.Site) model.Forecaster {
+		return model.NewStack(s, model.Setup{}, model.StackOptions{})
+	})
+}

@@ -1,6 +1,9 @@
-// Package solar holds solar geometry and clear-sky irradiance: the physical
-// layer of PV forecasts (METHODS.md section 1). Times are UTC, angles in
-// degrees, irradiance in W/m2.
+// Package solar holds solar geometry, clear-sky and extraterrestrial
+// irradiance, the split of global irradiance into beam and diffuse parts, the
+// transposition to a tilted plane and the module temperature derate: the
+// physical layer of PV forecasts (METHODS.md section 1). Times are UTC,
+// angles in degrees (azimuths east of north), irradiance in W/m2. Nothing
+// here allocates or reads the wall clock.
 package solar
 
 import (

@@ -221,7 +221,7 @@ func htmlBuildPage(r *Report) (*htmlPage, error) {
 			"weekly": htmlHeadWeekly, "width": htmlHeadWidth, "fan": htmlHeadFan,
 			"sites": htmlHeadSites, "leads": htmlHeadLeads, "alarms": htmlHeadAlarms, "read": htmlHeadRead,
 		},
-		DayAheadLabel: fmt.Sprintf("Day-ahead (issued %02d:00 UTC, leads under 24 h)", r.DayAheadHour),
+		DayAheadLabel: "Day-ahead (" + r.ViewLabel() + ")",
 	}
 	pg.Facts = htmlFacts(r)
 	for i, v := range r.Variants {
@@ -253,7 +253,7 @@ func htmlBuildPage(r *Report) (*htmlPage, error) {
 		"Intraday view: every forecast issued, all sites and leads pooled."))
 	fig, note = svgReliability(r, true)
 	pg.Reliability = append(pg.Reliability, draw(fig, note, "reliability diagram, day-ahead",
-		fmt.Sprintf("Day-ahead view: forecasts issued at %02d:00 UTC with leads under 24 h.", r.DayAheadHour)))
+		"Day-ahead view: forecasts "+r.ViewLabel()+"."))
 	fig, note = svgPIT(r)
 	pg.PIT = draw(fig, note, "PIT histogram",
 		"Each bar is the share of outcomes that fell between two consecutive levels, divided by the gap between them; a calibrated forecast gives the flat line at 1. A U shape means too narrow, a hump too wide, a slope a bias.")
@@ -266,7 +266,7 @@ func htmlBuildPage(r *Report) (*htmlPage, error) {
 	fig, note = svgFan(r)
 	fanCaption := "Shaded: central intervals; line: the median; dots: observed outcomes."
 	if len(r.Variants) > 0 && r.Variants[0].Fan != nil {
-		fanCaption = fmt.Sprintf("Day-ahead forecasts (issued %02d:00 UTC) of site %s. %s", r.DayAheadHour, r.Variants[0].Fan.Site, fanCaption)
+		fanCaption = fmt.Sprintf("Day-ahead forecasts (%s) of site %s. %s", r.ViewLabel(), r.Variants[0].Fan.Site, fanCaption)
 	}
 	pg.Fan = draw(fig, note, "fan chart", fanCaption)
 	if err != nil {
@@ -304,7 +304,7 @@ func htmlFacts(r *Report) []htmlFact {
 	if len(r.Buckets) > 0 {
 		f = append(f, htmlFact{Name: "Lead buckets", Value: strings.Join(r.Buckets, ", ")})
 	}
-	f = append(f, htmlFact{Name: "Day-ahead view", Value: fmt.Sprintf("forecasts issued at %02d:00 UTC, leads under 24 h", r.DayAheadHour)})
+	f = append(f, htmlFact{Name: "Day-ahead view", Value: "forecasts " + r.ViewLabel()})
 	f = append(f, htmlFact{Name: "Intraday view", Value: "every forecast issued, all leads"})
 	c := r.Costs
 	cur := htmlCurrency(c.Currency)
@@ -520,7 +520,7 @@ func htmlCompare(r *Report) htmlTable {
 	cols := htmlCompareCols()
 	t := htmlTable{
 		Groups: []htmlGroup{{Text: "", Span: 1},
-			{Text: fmt.Sprintf("Day-ahead (issued %02d:00 UTC, leads under 24 h)", r.DayAheadHour), Span: len(cols)},
+			{Text: "Day-ahead (" + r.ViewLabel() + ")", Span: len(cols)},
 			{Text: "Intraday (every forecast)", Span: len(cols)}},
 		Header: []string{"Variant"},
 		Note:   "Bold and shaded: the best value of each column among variants with scored forecasts (lowest loss, highest skill, coverage closest to its target). Cov.: share of outcomes inside the central interval; IS: mean interval score.",

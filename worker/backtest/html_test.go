@@ -318,7 +318,7 @@ func TestWriteHTMLContents(t *testing.T) {
 	if len(svgs) != 6 || strings.Count(doc, "<svg") != 6 {
 		t.Errorf("%d svg elements, want 6", len(svgs))
 	}
-	titles := []string{"Intraday view", "Day-ahead view (issued 12:00 UTC)",
+	titles := []string{"Intraday view", "Day-ahead view (issued 12:00 UTC, leads under 24 h)",
 		"PIT histogram: gbm+aci, intraday (N = 40000)", "Weekly coverage: gbm+aci, intraday",
 		"Mean width of the 80\u00a0% central interval by lead (intraday)", "Day-ahead fan chart: gbm+aci, site Hollow Ridge"}
 	for i, s := range svgs {

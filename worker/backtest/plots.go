@@ -249,7 +249,7 @@ func svgReliability(r *Report, dayAhead bool) (*svgFigure, string) {
 	title := "Intraday view"
 	if dayAhead {
 		view = "day-ahead"
-		title = fmt.Sprintf("Day-ahead view (issued %02d:00 UTC)", r.DayAheadHour)
+		title = "Day-ahead view (" + r.ViewLabel() + ")"
 	}
 	p := svgNewPlot(title, "Level (quantile probability)", "Observed coverage")
 	p.X.Min, p.X.Max, p.Y.Min, p.Y.Max = 0, 1, 0, 1

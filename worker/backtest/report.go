@@ -1,6 +1,32 @@
 package backtest
 
-import "time"
+import (
+	"fmt"
+	"strings"
+	"time"
+)
+
+// ViewLabel describes the day-ahead view, e.g. "issued 00:00 UTC, leads
+// under 24 h" or "issued 00:00, 12:00 UTC, leads under 48 h".
+func (r *Report) ViewLabel() string {
+	hours := r.IssueHours
+	if len(hours) == 0 {
+		hours = []int{r.DayAheadHour}
+	}
+	hs := make([]string, len(hours))
+	for i, h := range hours {
+		hs[i] = fmt.Sprintf("%02d:00", h)
+	}
+	horizon := r.ViewHorizonMinutes
+	if horizon <= 0 {
+		horizon = 24 * 60
+	}
+	lead := fmt.Sprintf("%d h", horizon/60)
+	if horizon%60 != 0 {
+		lead = fmt.Sprintf("%d min", horizon)
+	}
+	return fmt.Sprintf("issued %s UTC, leads under %s", strings.Join(hs, ", "), lead)
+}
 
 // ReportSchema is the version of the report.json layout.
 const ReportSchema = 1
@@ -23,6 +49,10 @@ type Report struct {
 	// DayAheadHour is the UTC issue hour of the day-ahead view, which keeps
 	// forecasts issued at that hour with leads in [0, 24 h).
 	DayAheadHour int `json:"day_ahead_issue_hour"`
+	// IssueHours are the UTC issue hours the day-ahead view keeps (the
+	// first is DayAheadHour), and ViewHorizonMinutes bounds its leads.
+	IssueHours         []int `json:"day_ahead_issue_hours"`
+	ViewHorizonMinutes int   `json:"day_ahead_horizon_minutes"`
 	// Costs are the imbalance prices of the trading-value figures.
 	Costs Costs `json:"costs"`
 	// Refused counts the inputs the main variant's actors refused (late,

@@ -61,6 +61,16 @@ type Options struct {
 	Warmup time.Duration
 	// DayAheadHour is the UTC issue hour of the day-ahead view (0..23).
 	DayAheadHour int
+	// IssueHours, if not nil, replaces DayAheadHour: the day-ahead view
+	// keeps the forecasts issued at any of these UTC hours (on the hour),
+	// e.g. each run of a weather model issued at 00 and 12 UTC.
+	IssueHours []int
+	// ViewHorizon bounds the leads of the day-ahead view: [0, ViewHorizon);
+	// 0 means 24 h.
+	ViewHorizon time.Duration
+	// Bands are the lead bands the report breaks scores down by; the zero
+	// value means the worker's lead buckets.
+	Bands model.Buckets
 	// Costs of imbalance; zero Short and Long mean the illustrative defaults.
 	Costs Costs
 	// FanSite is the site of the fan chart; "" means the first site.
@@ -135,6 +145,7 @@ type runner struct {
 	from    time.Time
 	to      time.Time
 	saveAt  map[int]bool
+	bands   model.Buckets // of the report's breakdown by lead
 	fanSite string
 	refused int
 }
@@ -144,8 +155,23 @@ func Run(ctx context.Context, h *history.History, o Options) (*Report, error) {
 	if len(h.Sites) == 0 {
 		return nil, fmt.Errorf("%w: no site", ErrNoData)
 	}
-	if o.DayAheadHour < 0 || o.DayAheadHour > 23 {
-		return nil, fmt.Errorf("backtest: day-ahead hour %d outside 0..23", o.DayAheadHour)
+	if o.IssueHours == nil {
+		o.IssueHours = []int{o.DayAheadHour}
+	}
+	if len(o.IssueHours) == 0 {
+		return nil, fmt.Errorf("backtest: no issue hour for the day-ahead view")
+	}
+	for _, h := range o.IssueHours {
+		if h < 0 || h > 23 {
+			return nil, fmt.Errorf("backtest: issue hour %d outside 0..23", h)
+		}
+	}
+	o.IssueHours = slices.Clone(o.IssueHours)
+	slices.Sort(o.IssueHours)
+	o.IssueHours = slices.Compact(o.IssueHours)
+	o.DayAheadHour = o.IssueHours[0]
+	if o.ViewHorizon <= 0 {
+		o.ViewHorizon = 24 * time.Hour
 	}
 	if o.Costs.Short == 0 && o.Costs.Long == 0 {
 		o.Costs.Short, o.Costs.Long = DefaultCostShort, DefaultCostLong
@@ -168,6 +194,10 @@ func Run(ctx context.Context, h *history.History, o Options) (*Report, error) {
 		scorers: map[string][]*scorer{},
 		saveAt:  map[int]bool{},
 	}
+	r.bands = o.Bands
+	if r.bands.Len() == 0 {
+		r.bands = r.cfg.Buckets
+	}
 	r.ivs = centralIntervals(r.cfg.Levels)
 	r.vars = slices.Clone(o.Variants)
 	if len(r.vars) == 0 {
@@ -182,7 +212,9 @@ func Run(ctx context.Context, h *history.History, o Options) (*Report, error) {
 		r.saveAt[h] = true
 	}
 	if o.SaveHours == nil {
-		r.saveAt[o.DayAheadHour] = true
+		for _, h := range o.IssueHours {
+			r.saveAt[h] = true
+		}
 	}
 
 	events := h.Events()
@@ -216,7 +248,7 @@ func Run(ctx context.Context, h *history.History, o Options) (*Report, error) {
 			cfg.Calibrator.Method = v.Calibrator
 			var ferr error
 			cfg.NewForecaster = func(s model.Site) model.Forecaster {
-				f, err := model.New(v.Model, s, cfg.Buckets)
+				f, err := model.Make(v.Model, s, model.Setup{Buckets: cfg.Buckets, Levels: cfg.Levels})
 				ferr = err
 				return f
 			}
@@ -232,7 +264,7 @@ func Run(ctx context.Context, h *history.History, o Options) (*Report, error) {
 			hs.Write([]byte(s.ID))
 			sc := &scorer{site: s.ID, seed: hs.Sum64(), pending: map[int64][]*row{}, weekly: map[time.Time]*acc{}}
 			for k := range sc.views {
-				for range r.cfg.Buckets.Len() {
+				for range r.bands.Len() {
 					sc.views[k] = append(sc.views[k], newAcc(len(r.cfg.Levels), len(r.ivs)))
 				}
 			}
@@ -325,7 +357,8 @@ func (sc *scorer) issue(r *runner, b *model.Bundle) {
 		return
 	}
 	iss := b.IssuedAt.UTC()
-	dayAheadIssue := iss.Hour() == r.o.DayAheadHour && iss.Minute() == 0 && iss.Second() == 0
+	dayAheadIssue := slices.Contains(r.o.IssueHours, iss.Hour()) && iss.Minute() == 0 && iss.Second() == 0
+	viewLead := int(r.o.ViewHorizon / time.Minute)
 	nl := len(b.Levels)
 	for i, s := range b.Steps {
 		if !s.ValidStart.Before(r.to) {
@@ -338,8 +371,8 @@ func (sc *scorer) issue(r *runner, b *model.Bundle) {
 			rw = &row{q: make([]float64, nl)}
 		}
 		rw.minutes, rw.lead, rw.issued = s.ValidMinutes, s.LeadMinutes, b.IssuedAt
-		rw.bucket = r.cfg.Buckets.Of(s.LeadMinutes)
-		rw.dayAhead = dayAheadIssue && s.LeadMinutes < 24*60
+		rw.bucket = r.bands.Of(s.LeadMinutes)
+		rw.dayAhead = dayAheadIssue && s.LeadMinutes < viewLead
 		copy(rw.q, b.Row(i))
 		key := s.ValidStart.Unix() / 60
 		sc.pending[key] = append(sc.pending[key], rw)
@@ -413,14 +446,15 @@ func (sc *scorer) prune(t time.Time) {
 // report assembles the Report from the scorers.
 func (r *runner) report(h *history.History) *Report {
 	levels := r.cfg.Levels
-	nl, nb := len(levels), r.cfg.Buckets.Len()
+	nl, nb := len(levels), r.bands.Len()
 	rep := &Report{
 		Schema: ReportSchema, Data: r.o.Data, From: r.from, To: r.to,
-		Levels: levels, DayAheadHour: r.o.DayAheadHour, Costs: r.o.Costs,
+		Levels: levels, DayAheadHour: r.o.DayAheadHour, IssueHours: r.o.IssueHours,
+		ViewHorizonMinutes: int(r.o.ViewHorizon / time.Minute), Costs: r.o.Costs,
 		Refused: r.refused,
 	}
 	for b := 0; b < nb; b++ {
-		rep.Buckets = append(rep.Buckets, r.cfg.Buckets.Name(b))
+		rep.Buckets = append(rep.Buckets, r.bands.Name(b))
 	}
 	for _, s := range h.Sites {
 		rep.Sites = append(rep.Sites, s.ID)

@@ -1,0 +1,98 @@
+package jet
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"strconv"
+	"time"
+
+	"github.com/nats-io/nats.go/jetstream"
+)
+
+// Defaults of a zero [ConsumerOptions].
+const (
+	DefaultMaxAckPending = 256
+	DefaultAckWait       = 30 * time.Second
+)
+
+// ConsumerOptions configures the consumer of one partition. The zero value
+// resumes where the partition's acknowledgements left off.
+type ConsumerOptions struct {
+	// StartSeq, if not 0, makes the consumer deliver from this input stream
+	// sequence on: a worker taking a partition over passes one more than the
+	// lowest sequence its restored snapshots cover. A durable consumer of
+	// the partition that starts elsewhere is deleted and created anew; one
+	// that already starts there is kept (with its acknowledgements). With 0
+	// an existing durable consumer is kept, and a new one starts at the
+	// beginning of the stream.
+	StartSeq uint64
+	// MaxAckPending bounds the messages delivered and not yet acknowledged;
+	// 0 means 256. The server stops delivering at the bound, which bounds
+	// the worker's queue.
+	MaxAckPending int
+	// AckWait is how long the server waits for an acknowledgement before
+	// delivering a message again; 0 means 30 seconds.
+	AckWait time.Duration
+}
+
+// ConsumerName returns the name of the durable consumer of partition p:
+// plumb-in-<p>. The consumer outlives its worker, so whoever leases the
+// partition next resumes from its acknowledgements.
+func ConsumerName(p int) string { return "plumb-in-" + strconv.Itoa(p) }
+
+// PartitionConsumer creates, or updates, the durable pull consumer of
+// partition p of the input stream: filtered on plumb.in.<p>.>, with explicit
+// acknowledgements, a bounded number of pending acknowledgements and the
+// start sequence of o. Only the holder of the partition's lease should call
+// it, since it may delete and recreate the consumer.
+func PartitionConsumer(ctx context.Context, js jetstream.JetStream, p int, o ConsumerOptions) (jetstream.Consumer, error) {
+	if p < 0 {
+		panic("jet: negative partition " + strconv.Itoa(p))
+	}
+	if o.MaxAckPending == 0 {
+		o.MaxAckPending = DefaultMaxAckPending
+	}
+	if o.AckWait == 0 {
+		o.AckWait = DefaultAckWait
+	}
+	if o.MaxAckPending < 0 || o.AckWait < 0 {
+		return nil, fmt.Errorf("jet: consumer options: negative MaxAckPending or AckWait")
+	}
+	name := ConsumerName(p)
+	cfg := jetstream.ConsumerConfig{
+		Durable:       name,
+		Description:   "plumb inputs of partition " + strconv.Itoa(p),
+		FilterSubject: PartitionFilter(p),
+		AckPolicy:     jetstream.AckExplicitPolicy,
+		AckWait:       o.AckWait,
+		MaxAckPending: o.MaxAckPending,
+		DeliverPolicy: jetstream.DeliverAllPolicy,
+	}
+	if o.StartSeq > 0 {
+		cfg.DeliverPolicy = jetstream.DeliverByStartSequencePolicy
+		cfg.OptStartSeq = o.StartSeq
+	}
+	c, err := js.Consumer(ctx, InputStream, name)
+	switch {
+	case errors.Is(err, jetstream.ErrConsumerNotFound):
+	case err != nil:
+		return nil, fmt.Errorf("jet: look up consumer %s: %w", name, err)
+	case o.StartSeq == 0:
+		// Keep where it starts; update the rest.
+		have := c.CachedInfo().Config
+		cfg.DeliverPolicy, cfg.OptStartSeq = have.DeliverPolicy, have.OptStartSeq
+	default:
+		have := c.CachedInfo().Config
+		if have.DeliverPolicy != cfg.DeliverPolicy || have.OptStartSeq != cfg.OptStartSeq {
+			if err := js.DeleteConsumer(ctx, InputStream, name); err != nil && !errors.Is(err, jetstream.ErrConsumerNotFound) {
+				return nil, fmt.Errorf("jet: replace consumer %s: %w", name, err)
+			}
+		}
+	}
+	c, err = js.CreateOrUpdateConsumer(ctx, InputStream, cfg)
+	if err != nil {
+		return nil, fmt.Errorf("jet: consumer %s: %w", name, err)
+	}
+	return c, nil
+}
