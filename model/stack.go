@@ -23,7 +23,9 @@ type StackOptions struct {
 	// hourly data).
 	MinRows int
 	// MaxRows is how many of the latest such intervals a forest is grown
-	// on; 0 means 17520 (two years of hourly data).
+	// on; 0 means 17520 (two years of hourly data). The Stack keeps
+	// 2*max(RefitRows, InstallAfter) rows more, so that a snapshot can
+	// grow the forest in use and a fit in flight again (MarshalBinary).
 	MaxRows int
 	// RefitGrowth: a new forest is grown once the rows added since the
 	// last one reach RefitGrowth times the rows it was grown on, or
@@ -78,7 +80,12 @@ func (o StackOptions) withDefaults() StackOptions {
 //     and the learned monotone power curve for a wind site). It is regrown
 //     on the site's own history, off the hot path, as the history grows;
 //     until the first one is grown, and for intervals no weather run
-//     covers, the Baseline stands in.
+//     covers, the Baseline stands in. A training row reads the curve
+//     feature off the curve as it stands when the row is learned; a
+//     forecast reads it off the curve as it stood when the forest in use
+//     was put in use, so that a row's forest quantiles stay the same for
+//     as long as that forest is in use (they are cached), whenever it is
+//     first asked for.
 //  2. An online linear quantile regression per (lead bucket, level)
 //     (model/qr, scale-free steps) on the distance of smart persistence
 //     from the base median, the base quantile's distance from its median,
@@ -106,6 +113,9 @@ type Stack struct {
 	sinLat, cosLat float64
 	sun            [2]sunDay   // the two latest days potential computed for
 	curve          *wind.Curve // wind sites only
+	// fcurve is curve as it stood when the forest in use was put in use:
+	// the forest's features are read off it (wind sites with a forest).
+	fcurve *wind.Curve
 
 	// Site weather columns, fixed by the first run seen; colKey and colMap
 	// map the latest run's Vars onto them.
@@ -280,8 +290,9 @@ func (s *Stack) extraFeatures() int {
 }
 
 // features writes the forest features of a weather row to s.fx; driver is
-// the row's main driver as the worker read it (Features.Driver).
-func (s *Stack) features(row *WeatherRow, vars []string, driver float64) {
+// the row's main driver as the worker read it (Features.Driver), and curve
+// the wind power curve to read (nil for PV).
+func (s *Stack) features(row *WeatherRow, vars []string, driver float64, curve *wind.Curve) {
 	s.mapCols(vars)
 	fx := s.fx
 	for i, j := range s.colMap {
@@ -302,7 +313,7 @@ func (s *Stack) features(row *WeatherRow, vars []string, driver float64) {
 		fx[k] = s.potential(mid)
 	case s.kind == KindWind:
 		fx[k] = driver
-		fx[k+1] = s.curve.Eval(driver)
+		fx[k+1] = curve.Eval(driver)
 	}
 }
 
@@ -356,7 +367,7 @@ func (s *Stack) forestGrid(x *Features) []float64 {
 		clear(s.cache)
 		s.slab = s.slab[:0]
 	}
-	s.features(x.Weather, x.WeatherVars, x.Driver)
+	s.features(x.Weather, x.WeatherVars, x.Driver, s.fcurve)
 	i := len(s.cache)
 	s.slab = slices.Grow(s.slab, g)[:(i+1)*g]
 	q := s.slab[i*g : (i+1)*g]
@@ -559,7 +570,7 @@ func (s *Stack) Learn(y float64, xs []*Features) {
 // addRow appends the forest features of x's weather row and the per-unit
 // outcome to the training ring.
 func (s *Stack) addRow(x *Features, pu float64) {
-	s.features(x.Weather, x.WeatherVars, x.Driver)
+	s.features(x.Weather, x.WeatherVars, x.Driver, s.curve)
 	if s.trX == nil {
 		s.trX = make([]float64, 0, 1024*s.p)
 	}
@@ -619,7 +630,23 @@ func (s *Stack) install() {
 		return
 	}
 	s.forest, s.inst = r.f, s.flight
+	if s.curve != nil {
+		s.fcurve = cloneCurve(s.curve)
+	}
 	s.fits++
 	clear(s.cache)
 	s.slab = s.slab[:0]
+}
+
+// cloneCurve returns a copy of c.
+func cloneCurve(c *wind.Curve) *wind.Curve {
+	b, err := c.MarshalBinary()
+	d := &wind.Curve{}
+	if err == nil {
+		err = d.UnmarshalBinary(b)
+	}
+	if err != nil {
+		panic("model: copying a wind curve: " + err.Error()) // a curve always encodes and decodes
+	}
+	return d
 }

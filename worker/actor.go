@@ -289,17 +289,7 @@ func (a *Actor) Weather(w *model.WeatherRun) error {
 	if len(a.runs) >= a.cfg.KeepRuns && w.IssuedAt.Before(a.runs[0].IssuedAt) {
 		return fmt.Errorf("%w: run issued %s is older than the %d runs kept", ErrTooLate, w.IssuedAt.Format(time.RFC3339), len(a.runs))
 	}
-	r := run{WeatherRun: w, driver: -1, u: -1, v: -1}
-	if a.site.Kind == model.KindPV {
-		r.driver = w.Var("ghi_wm2")
-	} else {
-		r.driver = w.Var("wind_ms")
-		for _, uv := range [][2]string{{"u_ms", "v_ms"}, {"u100_ms", "v100_ms"}, {"u10_ms", "v10_ms"}} {
-			if r.u, r.v = w.Var(uv[0]), w.Var(uv[1]); r.u >= 0 && r.v >= 0 {
-				break
-			}
-		}
-	}
+	r := a.keptRun(w)
 	i := sort.Search(len(a.runs), func(i int) bool { return a.runs[i].IssuedAt.After(w.IssuedAt) })
 	a.runs = append(a.runs, run{})
 	copy(a.runs[i+1:], a.runs[i:])
@@ -316,6 +306,23 @@ func (a *Actor) Weather(w *model.WeatherRun) error {
 	}
 	a.advance(w.IssuedAt)
 	return nil
+}
+
+// keptRun returns w as the actor keeps it, with the indices of the
+// variables the features need.
+func (a *Actor) keptRun(w *model.WeatherRun) run {
+	r := run{WeatherRun: w, driver: -1, u: -1, v: -1}
+	if a.site.Kind == model.KindPV {
+		r.driver = w.Var("ghi_wm2")
+	} else {
+		r.driver = w.Var("wind_ms")
+		for _, uv := range [][2]string{{"u_ms", "v_ms"}, {"u100_ms", "v100_ms"}, {"u10_ms", "v10_ms"}} {
+			if r.u, r.v = w.Var(uv[0]), w.Var(uv[1]); r.u >= 0 && r.v >= 0 {
+				break
+			}
+		}
+	}
+	return r
 }
 
 // Meter applies a meter reading: it settles the forecasts pending for the

@@ -3,6 +3,7 @@ package worker
 import (
 	"context"
 	"fmt"
+	"strconv"
 	"sync/atomic"
 	"time"
 
@@ -89,6 +90,7 @@ func (p *Pool) runHealth(ctx context.Context) {
 			return
 		case <-t.C:
 			p.checkHealth(p.o.Clock())
+			p.updateCoverage(ctx)
 		}
 	}
 }
@@ -146,5 +148,31 @@ func (p *Pool) setHealth(site string, h *siteHealth, kind string, bad bool, now 
 	p.m.AlarmEvents.WithLabelValues(kind, ev.State).Inc()
 	if err := p.out.Alarm(ev); err != nil {
 		p.log.Warn("publish alarm", zap.String("site", site), zap.Error(err))
+	}
+}
+
+// updateCoverage sets the live coverage gauge of each level, pooled over
+// the sites and lead buckets.
+func (p *Pool) updateCoverage(ctx context.Context) {
+	stats, err := p.Stats(ctx)
+	if err != nil {
+		return
+	}
+	var hits, n []float64
+	var levels []float64
+	for _, s := range stats {
+		for j, l := range s.Levels {
+			if j >= len(levels) {
+				levels = append(levels, l.Level)
+				hits, n = append(hits, 0), append(n, 0)
+			}
+			hits[j] += l.Coverage * float64(l.Settled)
+			n[j] += float64(l.Settled)
+		}
+	}
+	for j, l := range levels {
+		if n[j] > 0 {
+			p.m.Coverage.WithLabelValues(strconv.FormatFloat(l, 'f', -1, 64)).Set(hits[j] / n[j])
+		}
 	}
 }

@@ -16,6 +16,12 @@ type Metrics struct {
 	QueueFull      prometheus.Counter
 	AlarmsActive   prometheus.Gauge
 	AlarmEvents    *prometheus.CounterVec // by kind and state
+	// Durable mode (ServeDurable):
+	Redelivered     prometheus.Counter
+	Snapshots       prometheus.Counter
+	SnapshotBytes   prometheus.Histogram
+	PartitionsOwned prometheus.Gauge
+	Coverage        *prometheus.GaugeVec // by level: coverage pooled over sites and lead buckets
 }
 
 // NewMetrics creates the worker's metrics and registers them with reg (nil:
@@ -45,10 +51,22 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 			Name: "plumb_alarms_active", Help: "Alarms currently raised."}),
 		AlarmEvents: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "plumb_alarm_events_total", Help: "Alarm transitions, by kind and state."}, []string{"kind", "state"}),
+		Redelivered: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "plumb_inputs_skipped_total", Help: "Stream inputs skipped because their site had already applied them (redeliveries, replays after a restore)."}),
+		Snapshots: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "plumb_snapshots_total", Help: "Site snapshots taken."}),
+		SnapshotBytes: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name: "plumb_snapshot_bytes", Help: "Size of the site snapshots written.",
+			Buckets: prometheus.ExponentialBuckets(1024, 4, 10)}),
+		PartitionsOwned: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "plumb_partitions_owned", Help: "Input partitions this worker holds the lease of."}),
+		Coverage: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "plumb_live_coverage", Help: "Share of settled outcomes at or below the published quantile of each level since the worker started (or its snapshots), pooled over its sites and lead buckets."}, []string{"level"}),
 	}
 	if reg != nil {
 		reg.MustRegister(m.Inputs, m.Rejects, m.Refreshes, m.Published, m.Coalesced, m.Settled,
-			m.RefreshSeconds, m.QueueDepth, m.QueueFull, m.AlarmsActive, m.AlarmEvents)
+			m.RefreshSeconds, m.QueueDepth, m.QueueFull, m.AlarmsActive, m.AlarmEvents,
+			m.Redelivered, m.Snapshots, m.SnapshotBytes, m.PartitionsOwned, m.Coverage)
 	}
 	return m
 }

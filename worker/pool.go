@@ -52,6 +52,15 @@ type PoolOptions struct {
 	// Health configures the input health checks (stale weather, meter
 	// gaps, reject rate).
 	Health HealthOptions
+	// SnapshotEvery, with OnSnapshot, snapshots a site's actor after every
+	// SnapshotEvery inputs submitted with a stream sequence (SubmitSeq);
+	// 0 means 500.
+	SnapshotEvery int
+	// OnSnapshot, if set, receives each periodic snapshot: the site, the
+	// last stream sequence it covers and the bytes (Actor.Snapshot). It is
+	// called on the site's shard goroutine: it should hand the bytes on
+	// (to a bounded queue) rather than write them itself.
+	OnSnapshot func(site string, seq uint64, data []byte)
 }
 
 // ErrClosed is returned by Submit after the pool has stopped.
@@ -62,12 +71,18 @@ type item struct {
 	site    string
 	subject string
 	data    []byte
+	seq     uint64 // input stream sequence (SubmitSeq), 0 if none
+	ack     func() // called once the input is applied or skipped (SubmitSeq)
 	ctl     func() // a control request run on the shard's goroutine
 }
 
 type shard struct {
 	q      chan item
 	actors map[string]*Actor
+	// Per site: the last stream sequence applied, and inputs applied
+	// since the last snapshot. Only the shard's goroutine touches them.
+	seq   map[string]uint64
+	since map[string]int
 }
 
 // Pool routes inputs to site actors, one goroutine per shard, and sends
@@ -117,6 +132,9 @@ func NewPool(sites []model.Site, cfg Config, out Output, o PoolOptions) (*Pool, 
 	if o.Clock == nil {
 		o.Clock = time.Now
 	}
+	if o.SnapshotEvery <= 0 {
+		o.SnapshotEvery = 500
+	}
 	o.Health = o.Health.withDefaults()
 	p := &Pool{
 		cfg: cfg, out: out, o: o, log: o.Logger, m: o.Metrics,
@@ -128,7 +146,8 @@ func NewPool(sites []model.Site, cfg Config, out Output, o PoolOptions) (*Pool, 
 	}
 	p.dec.Sites = make(map[string]model.Site, len(sites))
 	for i := 0; i < o.Shards; i++ {
-		p.shards = append(p.shards, &shard{q: make(chan item, o.QueueLen), actors: map[string]*Actor{}})
+		p.shards = append(p.shards, &shard{q: make(chan item, o.QueueLen), actors: map[string]*Actor{},
+			seq: map[string]uint64{}, since: map[string]int{}})
 	}
 	for _, s := range sites {
 		a, err := NewActor(s, cfg)
@@ -155,6 +174,14 @@ func (p *Pool) Config() Config { return p.cfg }
 // what cannot be routed (bad subject, unknown site) and otherwise waits for
 // room in the site's shard queue. It returns ErrClosed after Run has ended.
 func (p *Pool) Submit(subject string, data []byte) error {
+	return p.SubmitSeq(subject, data, 0, nil)
+}
+
+// SubmitSeq is Submit for an input read from a stream at sequence seq
+// (> 0): an input at or below the last sequence its site has applied (a
+// redelivery, or a replay after a restore) is skipped, and ack, if not
+// nil, is called once the input is applied, skipped or rejected.
+func (p *Pool) SubmitSeq(subject string, data []byte, seq uint64, ack func()) error {
 	kind, site, err := stream.ParseInputSubject(subject)
 	if err == nil {
 		if _, ok := p.home[site]; !ok {
@@ -163,6 +190,9 @@ func (p *Pool) Submit(subject string, data []byte) error {
 	}
 	if err != nil {
 		p.reject(subject, site, len(data), err)
+		if ack != nil {
+			ack()
+		}
 		return nil
 	}
 	p.mu.RLock()
@@ -170,7 +200,7 @@ func (p *Pool) Submit(subject string, data []byte) error {
 	if p.closed {
 		return ErrClosed
 	}
-	it := item{kind: kind, site: site, subject: subject, data: data}
+	it := item{kind: kind, site: site, subject: subject, data: data, seq: seq, ack: ack}
 	sh := p.home[site]
 	p.queued[site].Add(1)
 	p.m.QueueDepth.Inc()
@@ -251,8 +281,20 @@ func (p *Pool) reject(subject, site string, size int, err error) {
 }
 
 func (p *Pool) apply(sh *shard, it item) {
+	if it.ack != nil {
+		defer it.ack()
+	}
+	if it.seq != 0 && it.seq <= sh.seq[it.site] {
+		p.queued[it.site].Add(-1)
+		p.m.QueueDepth.Dec()
+		p.m.Redelivered.Inc()
+		return
+	}
 	t0 := p.o.Clock()
 	a := sh.actors[it.site]
+	if it.seq != 0 {
+		defer p.afterSeq(sh, a, it)
+	}
 	h := p.health[it.site]
 	h.inputs.Add(1)
 	applied := 0
@@ -325,6 +367,103 @@ func (p *Pool) apply(sh *shard, it item) {
 	}
 	p.m.RefreshSeconds.Observe(p.o.Clock().Sub(t0).Seconds())
 }
+
+// afterSeq records that the input at it.seq is applied to the site, and
+// snapshots the actor every SnapshotEvery such inputs.
+func (p *Pool) afterSeq(sh *shard, a *Actor, it item) {
+	sh.seq[it.site] = it.seq
+	sh.since[it.site]++
+	if p.o.OnSnapshot == nil || sh.since[it.site] < p.o.SnapshotEvery {
+		return
+	}
+	sh.since[it.site] = 0
+	data, err := a.Snapshot(it.seq)
+	if err != nil {
+		p.log.Error("snapshot", zap.String("site", it.site), zap.Error(err))
+		return
+	}
+	p.m.Snapshots.Inc()
+	p.o.OnSnapshot(it.site, it.seq, data)
+}
+
+// control runs f on the shard goroutine of site and waits for it.
+func (p *Pool) control(ctx context.Context, site string, f func(sh *shard)) error {
+	sh, ok := p.home[site]
+	if !ok {
+		return fmt.Errorf("worker: site %q is not in the registry", site)
+	}
+	done := make(chan struct{})
+	p.mu.RLock()
+	if p.closed {
+		p.mu.RUnlock()
+		return ErrClosed
+	}
+	select {
+	case sh.q <- item{ctl: func() { defer close(done); f(sh) }}:
+	case <-ctx.Done():
+		p.mu.RUnlock()
+		return ctx.Err()
+	}
+	p.mu.RUnlock()
+	select {
+	case <-done:
+		return nil
+	case <-ctx.Done():
+		return ctx.Err()
+	}
+}
+
+// Restore replaces a site's actor by the one a snapshot holds (nil data:
+// a fresh actor) and returns the stream sequence it covers (0 for a
+// fresh actor). It runs on the site's shard goroutine, after the inputs
+// queued before it.
+func (p *Pool) Restore(ctx context.Context, site string, data []byte) (uint64, error) {
+	var seq uint64
+	var rerr error
+	err := p.control(ctx, site, func(sh *shard) {
+		var a *Actor
+		var err error
+		if data == nil {
+			a, err = NewActor(p.dec.Sites[site], p.cfg)
+		} else {
+			a, seq, err = RestoreActor(p.dec.Sites[site], p.cfg, data)
+		}
+		if err != nil {
+			rerr = err
+			return
+		}
+		sh.actors[site] = a
+		sh.seq[site] = seq
+		sh.since[site] = 0
+	})
+	if err != nil {
+		return 0, err
+	}
+	return seq, rerr
+}
+
+// Snapshot returns a snapshot of a site's actor and the stream sequence it
+// covers, taken on the site's shard goroutine after the inputs queued
+// before it.
+func (p *Pool) Snapshot(ctx context.Context, site string) (data []byte, seq uint64, err error) {
+	var serr error
+	err = p.control(ctx, site, func(sh *shard) {
+		seq = sh.seq[site]
+		data, serr = sh.actors[site].Snapshot(seq)
+		sh.since[site] = 0
+	})
+	if err != nil {
+		return nil, 0, err
+	}
+	if serr != nil {
+		return nil, 0, fmt.Errorf("worker: snapshot %s: %w", site, serr)
+	}
+	p.m.Snapshots.Inc()
+	return data, seq, nil
+}
+
+// Sites returns the site ids in registry order. The slice is the caller's.
+func (p *Pool) Sites() []string { return slices.Clone(p.order) }
 
 // SiteStats is a snapshot of one site's coverage.
 type SiteStats struct {

@@ -22,6 +22,7 @@ import (
 	"github.com/plumb-forecast/plumb/conformal"
 	"github.com/plumb-forecast/plumb/model"
 	"github.com/plumb-forecast/plumb/stream"
+	"github.com/plumb-forecast/plumb/stream/jet"
 	"github.com/plumb-forecast/plumb/worker"
 )
 
@@ -37,10 +38,23 @@ Without --nats it starts an embedded NATS server with JetStream, listening on
 --listen, so that other processes (plumb replay, plumb tail, your own
 producers and bots) can connect to it.
 
+With --durable the inputs are read from the input stream PLUMB_INPUTS
+(JetStream; made if missing) with acknowledgements; each site's whole state
+is snapshot to the KV bucket plumb_snapshots every --snapshot-every inputs and
+on a graceful stop (SIGINT, SIGTERM); the sites are spread over --partitions
+partitions, and workers sharing the inputs take partitions through leases in
+the KV bucket plumb_leases, picking up a dead worker's partitions after
+--lease-ttl. A worker that restarts, or takes over, restores the snapshots
+and replays the stream from there: its state is as if it had never stopped.
+Publish inputs with message ids (plumb replay --durable does) so that the
+stream drops duplicates.
+
 Examples:
   plumb run --sites ../shared/data/gefcom2012-wind/sites.json
   plumb run --sites sites.json --nats nats://nats-1:4222,nats://nats-2:4222 --creds worker.creds
   plumb run --sites sites.json --levels percentiles --calibrator none
+  plumb run --sites sites.json --durable --store /var/lib/plumb/nats
+  plumb run --sites sites.json --durable --worker-id w2 --nats nats://127.0.0.1:4222
 `
 
 // workerFlags are the forecasting settings shared by run and demo.
@@ -92,9 +106,9 @@ func (w *workerFlags) config() (worker.Config, error) {
 	if _, err := model.New(w.model, probe, model.DefaultBuckets()); err != nil {
 		return worker.Config{}, err
 	}
-	name := w.model
+	name, setup := w.model, model.Setup{Buckets: cfg.Buckets, Levels: cfg.Levels}
 	cfg.NewForecaster = func(s model.Site) model.Forecaster {
-		f, _ := model.New(name, s, model.DefaultBuckets()) // name checked above
+		f, _ := model.Make(name, s, setup) // name checked above
 		return f
 	}
 	return cfg, nil
@@ -115,6 +129,12 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		stale      = fs.Duration("stale-weather", 12*time.Hour, "raise weather_stale when a site's last weather run arrived longer ago (wall time; negative: off)")
 		gap        = fs.Duration("meter-gap", time.Hour, "raise meter_gap when a site's last reading arrived longer ago (wall time; negative: off)")
 		rejectRate = fs.Float64("reject-rate", 0.2, "raise reject_rate when more than this share of a site's messages is rejected")
+		durable    = fs.Bool("durable", false, "read inputs from the input stream (JetStream) with acks, snapshot each site's state to a KV bucket, and share partitions of sites with other workers through leases; a restart resumes exactly")
+		workerID   = fs.String("worker-id", "", "this worker's `name` among the workers sharing the inputs (default: host name and process id)")
+		partitions = fs.Int("partitions", jet.DefaultPartitions, "partitions the sites are spread over (fixed when the input stream is created)")
+		replicas   = fs.Int("replicas", jet.DefaultReplicas, "copies of the streams and buckets kept in a NATS cluster")
+		snapEvery  = fs.Int("snapshot-every", 500, "snapshot a site after this many inputs")
+		leaseTTL   = fs.Duration("lease-ttl", jet.DefaultLeaseTTL, "how long a partition's lease lasts unrenewed: a dead worker's partitions move after this")
 	)
 	conn.register(fs, "", "NATS server `URL`s, comma-separated (default: start an embedded server)")
 	wf.register(fs)
@@ -170,13 +190,24 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	m := worker.NewMetrics(reg)
-	pool, err := worker.NewPool(sites, cfg, worker.NewNATSOutput(nc), worker.PoolOptions{
-		Shards:  wf.shards,
-		Decoder: stream.Decoder{MaxBytes: *maxPayload},
-		Health:  worker.HealthOptions{StaleWeather: *stale, MeterGap: *gap, RejectRate: *rejectRate},
-		Logger:  log,
-		Metrics: m,
-	})
+	po := worker.PoolOptions{
+		Shards:        wf.shards,
+		Decoder:       stream.Decoder{MaxBytes: *maxPayload},
+		Health:        worker.HealthOptions{StaleWeather: *stale, MeterGap: *gap, RejectRate: *rejectRate},
+		Logger:        log,
+		Metrics:       m,
+		SnapshotEvery: *snapEvery,
+	}
+	var snaps *worker.DurableSnapshots
+	if *durable {
+		snaps = worker.NewDurableSnapshots(0)
+		po.OnSnapshot = snaps.Hook
+		if *workerID == "" {
+			host, _ := os.Hostname()
+			*workerID = fmt.Sprintf("%s-%d", host, os.Getpid())
+		}
+	}
+	pool, err := worker.NewPool(sites, cfg, worker.NewNATSOutput(nc), po)
 	if err != nil {
 		return err
 	}
@@ -197,7 +228,16 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		fmt.Fprintf(stdout, "worker ready: %d sites; inputs on plumb.in.{weather,meter}.<site>; try: plumb tail --nats %s\n",
 			len(sites), nc.ConnectedUrlRedacted())
 	}()
-	err = worker.Serve(ctx, nc, pool, ready)
+	if *durable {
+		err = worker.ServeDurable(ctx, nc, pool, snaps, worker.DurableOptions{
+			Layout:   jet.Layout{Partitions: *partitions, Replicas: *replicas, LeaseTTL: *leaseTTL},
+			WorkerID: *workerID,
+			Logger:   log,
+			Metrics:  m,
+		}, ready)
+	} else {
+		err = worker.Serve(ctx, nc, pool, ready)
+	}
 	log.Info("worker stopped")
 	return err
 }

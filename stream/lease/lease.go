@@ -473,6 +473,12 @@ func (m *Manager) release(ctx context.Context, p int) error {
 	cctx, cancel := m.call(ctx)
 	defer cancel()
 	if err := m.kv.Delete(cctx, leaseKey(p), jetstream.LastRevision(rev)); err != nil {
+		if errors.Is(err, jetstream.ErrKeyRevisionMismatch) {
+			// The lease expired and another worker took it meanwhile
+			// (a renewal came too late): it is not ours to delete.
+			m.log.Info("lease: already taken over", zap.Int("partition", p))
+			return nil
+		}
 		m.log.Warn("lease: release", zap.Int("partition", p), zap.Error(err))
 		return fmt.Errorf("lease: release partition %d: %w", p, err)
 	}
