@@ -112,6 +112,7 @@ type Stack struct {
 	lat, lon       float64
 	sinLat, cosLat float64
 	sun            [2]sunDay   // the two latest days potential computed for
+	potCache       [2]potMemo  // potentials: of the latest step, of its latest reading
 	curve          *wind.Curve // wind sites only
 	// fcurve is curve as it stood when the forest in use was put in use:
 	// the forest's features are read off it (wind sites with a forest).
@@ -396,11 +397,26 @@ func (s *Stack) potentials(x *Features) (potNow, potLast float64) {
 	if s.kind != KindPV || !s.hasLoc {
 		return 0, 0
 	}
+	// Both are asked for twice per step (nominal and calibrated levels),
+	// and potLast is the same for every step of a refresh: the latest
+	// answers are kept.
 	half := time.Duration(x.ValidMinutes) * time.Minute / 2
-	potNow = s.potential(x.ValidStart.Add(half))
-	issue := x.ValidStart.Add(-time.Duration(x.LeadMinutes) * time.Minute)
-	potLast = s.potential(issue.Add(-half))
-	return potNow, potLast
+	now := x.ValidStart.Add(half).Unix()
+	if c := &s.potCache[0]; !c.ok || c.at != now {
+		*c = potMemo{ok: true, at: now, v: s.potential(time.Unix(now, 0))}
+	}
+	last := x.ValidStart.Add(-time.Duration(x.LeadMinutes)*time.Minute - half).Unix()
+	if c := &s.potCache[1]; !c.ok || c.at != last {
+		*c = potMemo{ok: true, at: last, v: s.potential(time.Unix(last, 0))}
+	}
+	return s.potCache[0].v, s.potCache[1].v
+}
+
+// potMemo is a potential computed for a Unix time.
+type potMemo struct {
+	ok bool
+	at int64
+	v  float64
 }
 
 // corrFeatures writes the second layer's features to s.z but the base
@@ -418,6 +434,31 @@ func (s *Stack) corrFeatures(x *Features, u, bm, potNow, potLast float64) {
 		sp = min(1.2, max(0, sp/potLast)) * potNow
 	}
 	s.z[1] = sp - bm
+}
+
+// sortNearly sorts q as slices.Sort does, by insertion when q is short
+// and free of NaN (the corrected grid is nearly sorted). Equal values may
+// differ in the sign of a zero only.
+func sortNearly(q []float64) {
+	if len(q) > 128 {
+		slices.Sort(q)
+		return
+	}
+	for _, v := range q {
+		if v != v {
+			slices.Sort(q)
+			return
+		}
+	}
+	for i := 1; i < len(q); i++ {
+		v := q[i]
+		j := i
+		for j > 0 && v < q[j-1] {
+			q[j] = q[j-1]
+			j--
+		}
+		q[j] = v
+	}
 }
 
 // sortedFloats reports whether q is non-decreasing (false with a NaN).
@@ -456,7 +497,7 @@ func (s *Stack) gridQuantiles(x *Features, u float64) []float64 {
 		m.q[k] = s.bq[k] + s.corr[b*g+k].Predict(s.z[:])
 	}
 	if !sortedFloats(m.q) {
-		slices.Sort(m.q)
+		sortNearly(m.q)
 	}
 	m.potNow, m.potLast = potNow, potLast
 	m.ok, m.gen, m.start, m.lead, m.bucket, m.row, m.night = true, s.gen, x.ValidStart, x.LeadMinutes, x.Bucket, x.Weather, x.Night

@@ -618,6 +618,15 @@ func BenchmarkSiteMemory(b *testing.B) {
 				b.ReportMetric(siteBytes(b, site, Config{}, 20, true), "bytes/site")
 			}
 		})
+		b.Run(site.ID+"/stack", func(b *testing.B) {
+			cfg := Config{}.WithDefaults()
+			cfg.NewForecaster = func(s model.Site) model.Forecaster {
+				return model.NewStack(s, model.Setup{Buckets: cfg.Buckets, Levels: cfg.Levels}, model.StackOptions{})
+			}
+			for b.Loop() {
+				b.ReportMetric(siteBytes(b, site, cfg, 20, false), "bytes/site")
+			}
+		})
 	}
 	for _, sz := range benchSizes {
 		b.Run(sizeName(sz.steps, sz.levels), func(b *testing.B) {

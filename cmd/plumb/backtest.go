@@ -58,7 +58,7 @@ func runBacktest(ctx context.Context, args []string, stdout, stderr io.Writer) e
 		to          = fs.String("to", "", "score forecasts for intervals before this `time` (default: the end)")
 		warmup      = fs.Int("warmup-days", 30, "unscored `days` at the start when --from is not given")
 		levelsArg   = fs.String("levels", "default", "quantile `levels`: 'default' (0.05..0.95), 'percentiles' (0.01..0.99, as GEFCom) or a list")
-		models      = fs.String("models", "baseline", "forecasters to run side by side, comma-separated: "+strings.Join(model.Names(), ", "))
+		models      = fs.String("models", "stack", "forecasters to run side by side, comma-separated: "+strings.Join(model.Names(), ", "))
 		calibrators = fs.String("calibrators", "aci", "calibrators to run with each model, comma-separated: "+strings.Join(conformal.Methods(), ", "))
 		gamma       = fs.Float64("gamma", 0.005, "step size of the aci calibrator")
 		hour        = fs.Int("day-ahead-hour", 0, "UTC `hour` of the forecasts in the day-ahead view")

@@ -12,6 +12,7 @@ import (
 	"syscall"
 	"time"
 
+	"github.com/plumb-forecast/plumb/model"
 	"github.com/plumb-forecast/plumb/stream"
 	"github.com/plumb-forecast/plumb/worker"
 	"github.com/plumb-forecast/plumb/worker/loadgen"
@@ -59,11 +60,15 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		warmup     = fs.Duration("warmup", 10*time.Second, "start of the load left out of the latency figures")
 		backlog    = fs.Int("backlog", 0, "catch-up mode: readings waiting before the worker starts")
 		shards     = fs.Int("shards", 2, "goroutines of the in-process worker")
+		modelName  = fs.String("model", "stack", "forecaster of the in-process worker: "+strings.Join(model.Names(), ", "))
 		jsonOut    = fs.String("json", "", "also write the result as JSON to this `file`")
 		writeSites = fs.String("write-sites", "", "write the invented site registry to this `file` and exit")
 	)
 	conn.register(fs, "", "load an external worker at this NATS `URL` (default: a worker in this process)")
 	if err := parse(fs, args); err != nil {
+		return err
+	}
+	if _, err := model.Make(*modelName, model.Site{ID: "probe", Kind: model.KindWind, CapacityMW: 1}, model.Setup{}); err != nil {
 		return err
 	}
 	if *sites <= 0 || *speed <= 0 || *duration <= 0 {
@@ -98,7 +103,12 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 			return err
 		}
 		defer wnc.Close()
-		pool, err = worker.NewPool(fleet, worker.Config{}, worker.NewNATSOutput(wnc), worker.PoolOptions{Shards: *shards})
+		cfg := worker.Config{}.WithDefaults()
+		cfg.NewForecaster = func(s model.Site) model.Forecaster {
+			f, _ := model.Make(*modelName, s, model.Setup{Buckets: cfg.Buckets, Levels: cfg.Levels}) // name checked above
+			return f
+		}
+		pool, err = worker.NewPool(fleet, cfg, worker.NewNATSOutput(wnc), worker.PoolOptions{Shards: *shards})
 		if err != nil {
 			return err
 		}

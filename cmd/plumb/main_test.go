@@ -146,7 +146,7 @@ func TestBacktestCommand(t *testing.T) {
 	if code != 0 {
 		t.Fatalf("backtest: code %d\n%s\n%s", code, stdout, errOut)
 	}
-	for _, want := range []string{"baseline+aci", "climatology+none (ref)", "persistence+none (ref)", "day-ahead 00h", "report.html"} {
+	for _, want := range []string{"stack+aci", "climatology+none (ref)", "persistence+none (ref)", "day-ahead 00h", "report.html"} {
 		if !strings.Contains(stdout, want) {
 			t.Errorf("summary lacks %q:\n%s", want, stdout)
 		}

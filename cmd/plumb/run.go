@@ -70,7 +70,7 @@ type workerFlags struct {
 }
 
 func (w *workerFlags) register(fs *flag.FlagSet) {
-	fs.StringVar(&w.model, "model", "baseline", "forecaster: "+strings.Join(model.Names(), ", "))
+	fs.StringVar(&w.model, "model", "stack", "forecaster: "+strings.Join(model.Names(), ", ")+" (stack: forest on the weather plus intraday updating, the most accurate; baseline: lighter, for very large portfolios on one machine)")
 	fs.StringVar(&w.levels, "levels", "default", "quantile `levels`: 'default' (0.05..0.95 by 0.05), 'percentiles' (0.01..0.99) or a list such as 0.1,0.5,0.9")
 	fs.DurationVar(&w.horizon, "horizon", 0, "how far ahead a bundle reaches (0: to the end of the next UTC day, at least 36h)")
 	fs.StringVar(&w.calibrator, "calibrator", "aci", "online calibrator per lead bucket and level: "+strings.Join(conformal.Methods(), ", ")+
