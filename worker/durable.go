@@ -24,9 +24,11 @@ type DurableOptions struct {
 	// WorkerID names this worker in the lease bucket; it must be unique
 	// among the workers sharing the inputs (required).
 	WorkerID string
-	// SnapshotQueue bounds the snapshots waiting to be written; 0 means
-	// 256. A full queue makes the shard wait: the store sets the pace.
-	SnapshotQueue int
+	// SnapshotInterval: every site that applied inputs since its last
+	// snapshot is snapshot at least this often (wall time), besides every
+	// PoolOptions.SnapshotEvery inputs; 0 means 1 minute, negative never.
+	// A quiet site's snapshot then keeps up, so a restart replays little.
+	SnapshotInterval time.Duration
 	// Logger; nil means no logging.
 	Logger *zap.Logger
 	// Metrics, as given to the pool; nil means unregistered metrics.
@@ -109,6 +111,22 @@ func ServeDurable(ctx context.Context, nc *nats.Conn, p *Pool, snaps *DurableSna
 	if ready != nil {
 		close(ready)
 	}
+	if o.SnapshotInterval == 0 {
+		o.SnapshotInterval = time.Minute
+	}
+	if o.SnapshotInterval > 0 {
+		t := time.NewTicker(o.SnapshotInterval)
+	loop:
+		for {
+			select {
+			case <-ctx.Done():
+				break loop
+			case <-t.C:
+				d.snapshotOwned(ctx)
+			}
+		}
+		t.Stop()
+	}
 
 	<-ctx.Done()
 	// Graceful stop: stop consuming, snapshot every site owned, write the
@@ -177,6 +195,29 @@ func (d *durable) lost(part int) {
 		return
 	}
 	d.stop(part, r)
+}
+
+// snapshotOwned snapshots every site of the partitions held that applied
+// inputs since its last snapshot, through the writer's queue.
+func (d *durable) snapshotOwned(ctx context.Context) {
+	d.mu.Lock()
+	var sites []string
+	for part := range d.running {
+		sites = append(sites, d.sitesOf[part]...)
+	}
+	d.mu.Unlock()
+	for _, site := range sites {
+		data, seq, err := d.pool.SnapshotIfChanged(ctx, site)
+		if err != nil {
+			if ctx.Err() == nil {
+				d.log.Warn("timed snapshot", zap.String("site", site), zap.Error(err))
+			}
+			continue
+		}
+		if data != nil {
+			d.snaps.Hook(site, seq, data)
+		}
+	}
 }
 
 // stopAll stops every partition, as lost does.

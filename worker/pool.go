@@ -462,6 +462,30 @@ func (p *Pool) Snapshot(ctx context.Context, site string) (data []byte, seq uint
 	return data, seq, nil
 }
 
+// SnapshotIfChanged is Snapshot for a site that applied stream inputs
+// since its last snapshot; otherwise it returns nil data.
+func (p *Pool) SnapshotIfChanged(ctx context.Context, site string) (data []byte, seq uint64, err error) {
+	var serr error
+	err = p.control(ctx, site, func(sh *shard) {
+		if sh.since[site] == 0 {
+			return
+		}
+		seq = sh.seq[site]
+		data, serr = sh.actors[site].Snapshot(seq)
+		sh.since[site] = 0
+	})
+	if err != nil {
+		return nil, 0, err
+	}
+	if serr != nil {
+		return nil, 0, fmt.Errorf("worker: snapshot %s: %w", site, serr)
+	}
+	if data != nil {
+		p.m.Snapshots.Inc()
+	}
+	return data, seq, nil
+}
+
 // Sites returns the site ids in registry order. The slice is the caller's.
 func (p *Pool) Sites() []string { return slices.Clone(p.order) }
 

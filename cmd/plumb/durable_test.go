@@ -93,7 +93,7 @@ func (r *faultRig) start(id string) {
 	cmd := exec.Command(r.bin, "run", "--durable", "--nats", r.url, "--sites", r.sites,
 		"--model", "baseline", "--worker-id", id, "--metrics", "",
 		"--partitions", strconv.Itoa(r.layout.Partitions), "--replicas", strconv.Itoa(max(1, r.layout.Replicas)),
-		"--lease-ttl", r.layout.LeaseTTL.String(), "--snapshot-every", "300", "--log-level", "warn")
+		"--lease-ttl", r.layout.LeaseTTL.String(), "--snapshot-every", "300", "--snapshot-interval", "1s", "--log-level", "warn")
 	logs := &syncBuffer{}
 	cmd.Stdout, cmd.Stderr = logs, logs
 	if err := cmd.Start(); err != nil {

@@ -134,6 +134,7 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		partitions = fs.Int("partitions", jet.DefaultPartitions, "partitions the sites are spread over (fixed when the input stream is created)")
 		replicas   = fs.Int("replicas", jet.DefaultReplicas, "copies of the streams and buckets kept in a NATS cluster")
 		snapEvery  = fs.Int("snapshot-every", 500, "snapshot a site after this many inputs")
+		snapAfter  = fs.Duration("snapshot-interval", time.Minute, "and at least this often while it has new inputs (negative: only by count)")
 		leaseTTL   = fs.Duration("lease-ttl", jet.DefaultLeaseTTL, "how long a partition's lease lasts unrenewed: a dead worker's partitions move after this")
 	)
 	conn.register(fs, "", "NATS server `URL`s, comma-separated (default: start an embedded server)")
@@ -230,10 +231,11 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	}()
 	if *durable {
 		err = worker.ServeDurable(ctx, nc, pool, snaps, worker.DurableOptions{
-			Layout:   jet.Layout{Partitions: *partitions, Replicas: *replicas, LeaseTTL: *leaseTTL},
-			WorkerID: *workerID,
-			Logger:   log,
-			Metrics:  m,
+			Layout:           jet.Layout{Partitions: *partitions, Replicas: *replicas, LeaseTTL: *leaseTTL},
+			WorkerID:         *workerID,
+			SnapshotInterval: *snapAfter,
+			Logger:           log,
+			Metrics:          m,
 		}, ready)
 	} else {
 		err = worker.Serve(ctx, nc, pool, ready)

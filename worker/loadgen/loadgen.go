@@ -357,9 +357,13 @@ func CatchUp(ctx context.Context, nc *nats.Conn, pool *worker.Pool, o Options, b
 	if err := pub.Flush(); err != nil {
 		return CatchUpResult{}, err
 	}
-	// Wait until the subscription has received the whole backlog.
+	// Wait until the subscription has received the whole backlog: handed
+	// to the pool (whose queues fill, then block the callback) or waiting
+	// in the client.
 	for deadline := time.Now().Add(5 * time.Minute); ; {
-		if d, _ := sub.Delivered(); d >= int64(backlog) {
+		d, _ := sub.Delivered()
+		pending, _, _ := sub.Pending()
+		if d+int64(pending) >= int64(backlog) {
 			break
 		}
 		if time.Now().After(deadline) {
