@@ -3,6 +3,7 @@ package model
 import (
 	"fmt"
 	"math"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -69,4 +70,30 @@ func FormatLevel(level float64) string {
 		s += ".00"
 	}
 	return s
+}
+
+// SortNearly sorts q as slices.Sort does, by insertion when q is short and
+// free of NaN: quantiles at a grid of levels are nearly sorted, which
+// insertion sorts in about one pass. Equal values are the same float but
+// for the sign of a zero.
+func SortNearly(q []float64) {
+	if len(q) > 128 {
+		slices.Sort(q)
+		return
+	}
+	for _, v := range q {
+		if v != v {
+			slices.Sort(q)
+			return
+		}
+	}
+	for i := 1; i < len(q); i++ {
+		v := q[i]
+		j := i
+		for j > 0 && v < q[j-1] {
+			q[j] = q[j-1]
+			j--
+		}
+		q[j] = v
+	}
 }

@@ -436,31 +436,6 @@ func (s *Stack) corrFeatures(x *Features, u, bm, potNow, potLast float64) {
 	s.z[1] = sp - bm
 }
 
-// sortNearly sorts q as slices.Sort does, by insertion when q is short
-// and free of NaN (the corrected grid is nearly sorted). Equal values may
-// differ in the sign of a zero only.
-func sortNearly(q []float64) {
-	if len(q) > 128 {
-		slices.Sort(q)
-		return
-	}
-	for _, v := range q {
-		if v != v {
-			slices.Sort(q)
-			return
-		}
-	}
-	for i := 1; i < len(q); i++ {
-		v := q[i]
-		j := i
-		for j > 0 && v < q[j-1] {
-			q[j] = q[j-1]
-			j--
-		}
-		q[j] = v
-	}
-}
-
 // sortedFloats reports whether q is non-decreasing (false with a NaN).
 func sortedFloats(q []float64) bool {
 	for j := 1; j < len(q); j++ {
@@ -497,7 +472,7 @@ func (s *Stack) gridQuantiles(x *Features, u float64) []float64 {
 		m.q[k] = s.bq[k] + s.corr[b*g+k].Predict(s.z[:])
 	}
 	if !sortedFloats(m.q) {
-		sortNearly(m.q)
+		SortNearly(m.q)
 	}
 	m.potNow, m.potLast = potNow, potLast
 	m.ok, m.gen, m.start, m.lead, m.bucket, m.row, m.night = true, s.gen, x.ValidStart, x.LeadMinutes, x.Bucket, x.Weather, x.Night

@@ -642,7 +642,7 @@ func (a *Actor) publishable(q []float64, x *model.Features) {
 		}
 	}
 	if !sorted && !slices.IsSorted(q) {
-		sortFloats(q)
+		model.SortNearly(q) // clipping below erases the sign of a zero
 	}
 	// Clip each v to max(0, min(hi, v)) (the built-ins treat NaN and signed
 	// zeros as math.Max and math.Min do). Sorted, NaNs first, q holds from
@@ -930,32 +930,6 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		b.Expected[i] = sum / float64(nl)
 	}
 	return b
-}
-
-// sortFloats sorts q as slices.Sort does, by insertion when q is short and
-// free of NaN: the calibrated quantiles of a step are nearly sorted, which
-// insertion sorts in about one pass. Equal values are the same float but
-// for the sign of a zero, which clipping to [0, capacity] erases.
-func sortFloats(q []float64) {
-	if len(q) > 64 {
-		slices.Sort(q)
-		return
-	}
-	for _, v := range q {
-		if v != v {
-			slices.Sort(q)
-			return
-		}
-	}
-	for i := 1; i < len(q); i++ {
-		v := q[i]
-		j := i
-		for j > 0 && v < q[j-1] {
-			q[j] = q[j-1]
-			j--
-		}
-		q[j] = v
-	}
 }
 
 // sameBits reports whether p and q hold the same floats, bit for bit.
