@@ -472,13 +472,27 @@ func (m *Manager) release(ctx context.Context, p int) error {
 	m.lose(p)
 	cctx, cancel := m.call(ctx)
 	defer cancel()
-	if err := m.kv.Delete(cctx, leaseKey(p), jetstream.LastRevision(rev)); err != nil {
-		if errors.Is(err, jetstream.ErrKeyRevisionMismatch) {
-			// The lease expired and another worker took it meanwhile
-			// (a renewal came too late): it is not ours to delete.
+	err := m.kv.Delete(cctx, leaseKey(p), jetstream.LastRevision(rev))
+	// A revision mismatch means either that a renewal whose answer we
+	// missed went through (the key holds our value at a later revision),
+	// or that the lease expired and another worker took it. Reads may come
+	// from a replica that lags behind, so look a few times before deciding.
+	for try := 0; errors.Is(err, jetstream.ErrKeyRevisionMismatch) && try < 5; try++ {
+		if try > 0 {
+			time.Sleep(time.Duration(try) * 50 * time.Millisecond)
+		}
+		e, gerr := m.kv.Get(cctx, leaseKey(p))
+		switch {
+		case gerr == nil && bytes.Equal(e.Value(), m.value):
+			err = m.kv.Delete(cctx, leaseKey(p), jetstream.LastRevision(e.Revision()))
+		case gerr != nil && !errors.Is(gerr, jetstream.ErrKeyNotFound):
+			err = gerr
+		case try == 4:
 			m.log.Info("lease: already taken over", zap.Int("partition", p))
 			return nil
 		}
+	}
+	if err != nil {
 		m.log.Warn("lease: release", zap.Int("partition", p), zap.Error(err))
 		return fmt.Errorf("lease: release partition %d: %w", p, err)
 	}
