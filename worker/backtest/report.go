@@ -91,6 +91,14 @@ type Variant struct {
 	// Weekly is the intraday coverage of each level per calendar week
 	// (weeks start on Monday, UTC).
 	Weekly []Period `json:"weekly"`
+	// Daily counts, per UTC day of the target intervals (intraday view,
+	// every site), the outcomes at or below each level's quantile and
+	// inside each central interval: enough to follow coverage over any
+	// rolling window, e.g. after a change.
+	Daily []Day `json:"daily"`
+	// AlarmLog is every alarm raise and clear of the variant's actors
+	// while scored forecasts were issued, in event-time order.
+	AlarmLog []AlarmEvent `json:"alarm_log"`
 	// Alarms counts the alarms the variant's actors raised while scored
 	// forecasts were issued, per site and kind.
 	Alarms []AlarmCount `json:"alarms"`
@@ -164,6 +172,27 @@ type Trading struct {
 	Saving float64 `json:"saving"`
 }
 
+// Day is what was scored for the intervals of one UTC day.
+type Day struct {
+	Start time.Time `json:"start"`
+	N     int       `json:"n"`
+	// Hits counts outcomes at or below each level's quantile (Report.Levels).
+	Hits []int `json:"hits"`
+	// IntervalHits counts outcomes inside each central interval, in the
+	// order of Scores.Intervals.
+	IntervalHits []int `json:"interval_hits"`
+}
+
+// AlarmEvent is one alarm transition.
+type AlarmEvent struct {
+	Site       string    `json:"site"`
+	Time       time.Time `json:"time"`
+	Kind       string    `json:"kind"`
+	State      string    `json:"state"`
+	Level      float64   `json:"level,omitempty"`
+	LeadBucket string    `json:"lead_bucket,omitempty"`
+}
+
 // Period is the coverage of each level over one stretch of time.
 type Period struct {
 	Start    time.Time `json:"start"`
@@ -193,4 +222,69 @@ type AlarmCount struct {
 	Kind   string    `json:"kind"`
 	Raised int       `json:"raised"`
 	First  time.Time `json:"first_raised"`
+}
+
+// Recovery is how the 80 % and 90 % central intervals of a variant fared
+// after a change at event time at, on rolling windows of whole days.
+type Recovery struct {
+	// Before is the coverage of each interval over the window before the
+	// change; Worst the furthest from nominal of the rolling windows ending
+	// after it.
+	Before, Worst []float64
+	// Back is the number of days after the change at which the rolling
+	// coverage of each interval was within tol of nominal for good (until
+	// the end of the scored data); -1 if it never was.
+	Back []int
+}
+
+// RecoveryAfter measures a variant's central intervals (Report
+// Variants[vi], the intraday view) around a change at event time at: the
+// coverage over rolling windows of window days, from the daily counts.
+// ivs picks the intervals by index in Scores.Intervals.
+func (r *Report) RecoveryAfter(vi int, at time.Time, window int, tol float64, ivs []int, nominal []float64) Recovery {
+	days := r.Variants[vi].Daily
+	rec := Recovery{Before: make([]float64, len(ivs)), Worst: make([]float64, len(ivs)), Back: make([]int, len(ivs))}
+	change := at.UTC().Truncate(24 * time.Hour)
+	cov := func(end, k int) (float64, bool) { // window of days ending at index end (inclusive)
+		n, hits := 0, 0
+		for d := max(0, end-window+1); d <= end; d++ {
+			n += days[d].N
+			hits += days[d].IntervalHits[ivs[k]]
+		}
+		return float64(hits) / float64(max(n, 1)), n > 0
+	}
+	first := len(days)
+	for i, d := range days {
+		if !d.Start.Before(change) {
+			first = i
+			break
+		}
+	}
+	for k := range ivs {
+		rec.Back[k] = -1
+		if first > 0 {
+			rec.Before[k], _ = cov(first-1, k)
+		}
+		rec.Worst[k] = nominal[k]
+		good := -1 // first day index from which every window is within tol
+		for i := first; i < len(days); i++ {
+			c, ok := cov(i, k)
+			if !ok {
+				continue
+			}
+			if d := c - nominal[k]; d*d > (rec.Worst[k]-nominal[k])*(rec.Worst[k]-nominal[k]) {
+				rec.Worst[k] = c
+			}
+			switch {
+			case c < nominal[k]-tol || c > nominal[k]+tol:
+				good = -1
+			case good < 0:
+				good = i
+			}
+		}
+		if good >= 0 {
+			rec.Back[k] = int(days[good].Start.Sub(change) / (24 * time.Hour))
+		}
+	}
+	return rec
 }

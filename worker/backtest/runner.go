@@ -103,6 +103,8 @@ type scorer struct {
 	fanRows  []FanRow
 	fanIndex map[int64]int
 	raised   map[string]*AlarmCount // by kind
+	daily    map[time.Time]*acc     // by UTC day of the interval (intraday view)
+	log      []AlarmEvent           // every alarm transition while scored
 }
 
 // alarms counts the raised alarms among events at event time t.
@@ -111,6 +113,7 @@ func (sc *scorer) alarms(evs []conformal.Event, t, from time.Time) {
 		return
 	}
 	for _, e := range evs {
+		sc.log = append(sc.log, AlarmEvent{Site: e.Site, Time: e.EventTime, Kind: e.Kind, State: e.State, Level: e.Level, LeadBucket: e.LeadBucket})
 		if e.State != conformal.StateRaised {
 			continue
 		}
@@ -262,7 +265,7 @@ func Run(ctx context.Context, h *history.History, o Options) (*Report, error) {
 			r.actors[s.ID] = append(r.actors[s.ID], a)
 			hs := fnv.New64a()
 			hs.Write([]byte(s.ID))
-			sc := &scorer{site: s.ID, seed: hs.Sum64(), pending: map[int64][]*row{}, weekly: map[time.Time]*acc{}}
+			sc := &scorer{site: s.ID, seed: hs.Sum64(), pending: map[int64][]*row{}, weekly: map[time.Time]*acc{}, daily: map[time.Time]*acc{}}
 			for k := range sc.views {
 				for range r.bands.Len() {
 					sc.views[k] = append(sc.views[k], newAcc(len(r.cfg.Levels), len(r.ivs)))
@@ -393,7 +396,7 @@ func (sc *scorer) settle(r *runner, rd *model.Reading) {
 	delete(sc.pending, key)
 	y := rd.PowerMW
 	levels := r.cfg.Levels
-	var wk *acc
+	var wk, dy *acc
 	for _, rw := range rows {
 		if rw.minutes != rd.IntervalMinutes {
 			sc.free = append(sc.free, rw)
@@ -401,6 +404,14 @@ func (sc *scorer) settle(r *runner, rd *model.Reading) {
 		}
 		u := conformal.TieDraw(sc.seed, rd.IntervalStart, rw.lead)
 		sc.views[0][rw.bucket].add(levels, rw.q, r.ivs, y, u)
+		if dy == nil {
+			d := rd.IntervalStart.UTC().Truncate(24 * time.Hour)
+			if dy = sc.daily[d]; dy == nil {
+				dy = newAcc(len(levels), len(r.ivs))
+				sc.daily[d] = dy
+			}
+		}
+		dy.add(levels, rw.q, r.ivs, y, u)
 		sc.trades[0].add(levels, rw.q, y, rw.minutes, r.o.Costs)
 		if rw.dayAhead {
 			sc.views[1][rw.bucket].add(levels, rw.q, r.ivs, y, u)
@@ -499,6 +510,23 @@ func (r *runner) report(h *history.History) *Report {
 			}
 			vr.Weekly = append(vr.Weekly, p)
 		}
+		days := map[time.Time]*acc{}
+		for _, site := range rep.Sites {
+			sc := r.scorers[site][vi]
+			for d, a := range sc.daily {
+				if days[d] == nil {
+					days[d] = newAcc(nl, len(r.ivs))
+				}
+				days[d].merge(a)
+			}
+			vr.AlarmLog = append(vr.AlarmLog, sc.log...)
+		}
+		for _, d := range sortedTimes(days) {
+			a := days[d]
+			p := Day{Start: d, N: a.n, Hits: slices.Clone(a.hits), IntervalHits: slices.Clone(a.ivHit)}
+			vr.Daily = append(vr.Daily, p)
+		}
+		slices.SortStableFunc(vr.AlarmLog, func(a, b AlarmEvent) int { return a.Time.Compare(b.Time) })
 		for _, site := range rep.Sites {
 			sc := r.scorers[site][vi]
 			kinds := make([]string, 0, len(sc.raised))
