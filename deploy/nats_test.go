@@ -327,10 +327,22 @@ func TestClusterForms(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	ctx, cancel := context.WithTimeout(context.Background(), 20*time.Second)
+	// Placing a replicated stream needs every peer's group to elect a
+	// leader, which a loaded machine can make slow: Ensure is idempotent,
+	// so it is tried again before giving up.
+	ctx, cancel := context.WithTimeout(context.Background(), 90*time.Second)
 	defer cancel()
-	if err := jet.Ensure(ctx, js, jet.Layout{Replicas: len(srvs)}); err != nil {
-		t.Fatalf("worker: ensure with %d replicas: %v", len(srvs), err)
+	for try := 1; ; try++ {
+		tctx, tcancel := context.WithTimeout(ctx, 30*time.Second)
+		err := jet.Ensure(tctx, js, jet.Layout{Replicas: len(srvs)})
+		tcancel()
+		if err == nil {
+			break
+		}
+		if try == 3 {
+			t.Fatalf("worker: ensure with %d replicas (%d tries): %v", len(srvs), try, err)
+		}
+		t.Logf("ensure with %d replicas, try %d: %v", len(srvs), try, err)
 	}
 	for _, name := range []string{jet.InputStream, jet.BundleStream, "KV_" + jet.SnapshotBucket, "KV_" + jet.LeaseBucket} {
 		s, err := js.Stream(ctx, name)
