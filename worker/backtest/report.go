@@ -94,7 +94,9 @@ type Variant struct {
 	// Daily counts, per UTC day of the target intervals (intraday view,
 	// every site), the outcomes at or below each level's quantile and
 	// inside each central interval: enough to follow coverage over any
-	// rolling window, e.g. after a change.
+	// rolling window, e.g. after a change. Forecasts that were certain of
+	// a zero that came (every quantile 0: a PV night) are left out: they
+	// are always inside and would hide a change in the daylight hours.
 	Daily []Day `json:"daily"`
 	// AlarmLog is every alarm raise and clear of the variant's actors
 	// while scored forecasts were issued, in event-time order.

@@ -404,14 +404,16 @@ func (sc *scorer) settle(r *runner, rd *model.Reading) {
 		}
 		u := conformal.TieDraw(sc.seed, rd.IntervalStart, rw.lead)
 		sc.views[0][rw.bucket].add(levels, rw.q, r.ivs, y, u)
-		if dy == nil {
-			d := rd.IntervalStart.UTC().Truncate(24 * time.Hour)
-			if dy = sc.daily[d]; dy == nil {
-				dy = newAcc(len(levels), len(r.ivs))
-				sc.daily[d] = dy
+		if !(y == 0 && rw.q[len(rw.q)-1] == 0) { // a certain zero (a PV night) says nothing of coverage
+			if dy == nil {
+				d := rd.IntervalStart.UTC().Truncate(24 * time.Hour)
+				if dy = sc.daily[d]; dy == nil {
+					dy = newAcc(len(levels), len(r.ivs))
+					sc.daily[d] = dy
+				}
 			}
+			dy.add(levels, rw.q, r.ivs, y, u)
 		}
-		dy.add(levels, rw.q, r.ivs, y, u)
 		sc.trades[0].add(levels, rw.q, y, rw.minutes, r.o.Costs)
 		if rw.dayAhead {
 			sc.views[1][rw.bucket].add(levels, rw.q, r.ivs, y, u)
