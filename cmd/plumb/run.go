@@ -162,6 +162,9 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	}
 
 	if conn.o.URL == "" {
+		if *durable && *store == "" {
+			log.Warn("--durable with the embedded server and no --store: the streams and snapshots live in a temporary folder removed on exit, so a restart starts afresh; give --store to keep them")
+		}
 		host, portStr, err := net.SplitHostPort(*listen)
 		if err != nil {
 			return fmt.Errorf("--listen %q: %w", *listen, err)
