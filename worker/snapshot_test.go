@@ -596,3 +596,45 @@ func BenchmarkRestoreActor(b *testing.B) {
 		}
 	}
 }
+
+// TestSnapshotHasNoSideEffect: taking snapshots (as durable mode does, at
+// wall-clock times) changes nothing an actor gives afterwards, nor its
+// final state.
+func TestSnapshotHasNoSideEffect(t *testing.T) {
+	for _, site := range testSites() {
+		t.Run(site.ID, func(t *testing.T) {
+			f := variedFeed(site, 6, 99)
+			in := inputs(f)
+			cfg := Config{}.WithDefaults()
+			plain, err := NewActor(site, cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			snapped, err := NewActor(site, cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for i, x := range in {
+				if i%7 == 3 {
+					if _, err := snapped.Snapshot(uint64(i)); err != nil {
+						t.Fatal(err)
+					}
+				}
+				if a, b := apply(t, plain, x), apply(t, snapped, x); a != b {
+					t.Fatalf("input %d: the actor that was snapshot gives something else", i)
+				}
+			}
+			a, err := plain.Snapshot(1)
+			if err != nil {
+				t.Fatal(err)
+			}
+			b, err := snapped.Snapshot(1)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if !bytes.Equal(a, b) {
+				t.Fatal("the final snapshots differ")
+			}
+		})
+	}
+}

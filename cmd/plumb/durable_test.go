@@ -279,13 +279,23 @@ func TestDurableFaults(t *testing.T) {
 		t.Fatalf("the uninterrupted run left %d snapshots and bundles, want %d", len(want), 2*len(h.Sites))
 	}
 
-	// Ten SIGKILLs at spread points of the replay, each followed by a
-	// restart of the same worker.
+	// Ten SIGKILLs at spread points of the replay, and three moments
+	// after a start, each followed by a restart of the same worker.
 	t.Run("sigkill", func(t *testing.T) {
 		r := newFaultRig(t, bin, jettest.Server(t), dir, events, layout)
 		rng := rand.New(rand.NewPCG(7, 11))
 		var points []string
 		for k := 1; k <= 10; k++ {
+			if k%3 == 0 {
+				// Also a kill moments after a start, before the restored
+				// partitions write a snapshot: the next start restores the
+				// same snapshots again and must replay what the killed
+				// run consumed and acknowledged.
+				r.start("w1")
+				time.Sleep(time.Duration(300+rng.IntN(1500)) * time.Millisecond)
+				r.stop("w1", syscall.SIGKILL)
+				points = append(points, "early")
+			}
 			r.start("w1")
 			at := r.total*uint64(k)/11 + uint64(rng.IntN(int(r.total/40)))
 			r.waitFor(fmt.Sprintf("kill point %d", k), 3*time.Minute, func() bool { return r.progress() >= at || r.done() })

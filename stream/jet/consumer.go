@@ -21,10 +21,11 @@ const (
 type ConsumerOptions struct {
 	// StartSeq, if not 0, makes the consumer deliver from this input stream
 	// sequence on: a worker taking a partition over passes one more than the
-	// lowest sequence its restored snapshots cover. A durable consumer of
-	// the partition that starts elsewhere is deleted and created anew; one
-	// that already starts there is kept (with its acknowledgements). With 0
-	// an existing durable consumer is kept, and a new one starts at the
+	// lowest sequence its restored snapshots cover. An existing durable
+	// consumer of the partition is deleted and created anew, even one made
+	// with the same start: it may have acknowledged past it, and the
+	// inputs the snapshots do not cover must be delivered again. With 0 an
+	// existing durable consumer is kept, and a new one starts at the
 	// beginning of the stream.
 	StartSeq uint64
 	// MaxAckPending bounds the messages delivered and not yet acknowledged;
@@ -44,8 +45,11 @@ func ConsumerName(p int) string { return "plumb-in-" + strconv.Itoa(p) }
 // PartitionConsumer creates, or updates, the durable pull consumer of
 // partition p of the input stream: filtered on plumb.in.<p>.>, with explicit
 // acknowledgements, a bounded number of pending acknowledgements and the
-// start sequence of o. Only the holder of the partition's lease should call
-// it, since it may delete and recreate the consumer.
+// start sequence of o. A non-zero StartSeq always makes delivery start
+// there, replacing an existing consumer (whatever it acknowledged); with
+// StartSeq 0 an existing consumer resumes where its acknowledgements left
+// off. Only the holder of the partition's lease should call it, since it
+// may delete and recreate the consumer.
 func PartitionConsumer(ctx context.Context, js jetstream.JetStream, p int, o ConsumerOptions) (jetstream.Consumer, error) {
 	if p < 0 {
 		panic("jet: negative partition " + strconv.Itoa(p))
@@ -83,11 +87,12 @@ func PartitionConsumer(ctx context.Context, js jetstream.JetStream, p int, o Con
 		have := c.CachedInfo().Config
 		cfg.DeliverPolicy, cfg.OptStartSeq = have.DeliverPolicy, have.OptStartSeq
 	default:
-		have := c.CachedInfo().Config
-		if have.DeliverPolicy != cfg.DeliverPolicy || have.OptStartSeq != cfg.OptStartSeq {
-			if err := js.DeleteConsumer(ctx, InputStream, name); err != nil && !errors.Is(err, jetstream.ErrConsumerNotFound) {
-				return nil, fmt.Errorf("jet: replace consumer %s: %w", name, err)
-			}
+		// Delivery must start at StartSeq even when the consumer was made
+		// with the same start before and has acknowledged past it (a
+		// restore from snapshots that cover less than was acknowledged):
+		// replace it.
+		if err := js.DeleteConsumer(ctx, InputStream, name); err != nil && !errors.Is(err, jetstream.ErrConsumerNotFound) {
+			return nil, fmt.Errorf("jet: replace consumer %s: %w", name, err)
 		}
 	}
 	c, err = js.CreateOrUpdateConsumer(ctx, InputStream, cfg)
