@@ -20,27 +20,9 @@ import (
 	"strings"
 	"testing"
 	"time"
-)
 
-// repoRoot returns the folder holding go.mod, walking up from the package
-// folder.
-func repoRoot(t *testing.T) string {
-	t.Helper()
-	dir, err := os.Getwd()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			return dir
-		}
-		up := filepath.Dir(dir)
-		if up == dir {
-			t.Fatal("no go.mod above the package folder")
-		}
-		dir = up
-	}
-}
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
+)
 
 // A service of docker-compose.yml, as far as the tests read it.
 type service struct {
@@ -71,7 +53,7 @@ type composeFile struct {
 // loadCompose reads docker-compose.yml at the repository root.
 func loadCompose(t *testing.T) *composeFile {
 	t.Helper()
-	data, err := os.ReadFile(filepath.Join(repoRoot(t), "docker-compose.yml"))
+	data, err := os.ReadFile(filepath.Join(sharedtest.Root(t), "docker-compose.yml"))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -226,7 +208,7 @@ func (cf *composeFile) workers() []*service {
 var envRef = regexp.MustCompile(`^\$\{([A-Za-z_][A-Za-z0-9_]*)(?:[:?-][^}]*)?\}$`)
 
 func TestComposeConsistent(t *testing.T) {
-	root := repoRoot(t)
+	root := sharedtest.Root(t)
 	cf := loadCompose(t)
 	setPasswords(t)
 
@@ -659,7 +641,7 @@ type dashboard struct {
 
 func loadDashboard(t *testing.T) dashboard {
 	t.Helper()
-	data, err := os.ReadFile(filepath.Join(repoRoot(t), "deploy", "grafana", "dashboards", "plumb.json"))
+	data, err := os.ReadFile(filepath.Join(sharedtest.Root(t), "deploy", "grafana", "dashboards", "plumb.json"))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -703,7 +685,7 @@ func definedMetrics(t *testing.T) map[string]bool {
 	known := map[string]bool{}
 	fset := token.NewFileSet()
 	for _, dir := range metricsSources {
-		files, err := filepath.Glob(filepath.Join(repoRoot(t), filepath.FromSlash(dir), "*.go"))
+		files, err := filepath.Glob(filepath.Join(sharedtest.Root(t), filepath.FromSlash(dir), "*.go"))
 		if err != nil {
 			t.Fatal(err)
 		}

@@ -22,6 +22,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 	"go.uber.org/goleak"
 
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"github.com/plumb-forecast/plumb/stream"
 	"github.com/plumb-forecast/plumb/stream/jet"
 	"github.com/plumb-forecast/plumb/stream/lease"
@@ -57,7 +58,7 @@ func setPasswords(t *testing.T) map[string]string {
 // set.
 func loadNATS(t *testing.T, rel string) *server.Options {
 	t.Helper()
-	path := filepath.Join(repoRoot(t), "deploy", rel)
+	path := filepath.Join(sharedtest.Root(t), "deploy", rel)
 	opts, err := server.ProcessConfigFile(path)
 	if err != nil {
 		t.Fatalf("%s: %v", rel, err)
@@ -138,7 +139,7 @@ func configVars(t *testing.T, dir string) []string {
 func TestClusterConfigs(t *testing.T) {
 	pw := setPasswords(t)
 	t.Run("variables", func(t *testing.T) {
-		got := configVars(t, filepath.Join(repoRoot(t), "deploy", "cluster"))
+		got := configVars(t, filepath.Join(sharedtest.Root(t), "deploy", "cluster"))
 		var want []string
 		for _, v := range passwordVars {
 			want = append(want, v)
