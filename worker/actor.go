@@ -58,6 +58,14 @@ type Config struct {
 	Lateness time.Duration
 	// MaxAhead is how far ahead of the site's now an input may lie; 0 means 30 days.
 	MaxAhead time.Duration
+	// Reorder, if positive, is a window of event time over which inputs
+	// are put back in order: each input is held until an input at least
+	// Reorder later in event time (issue time of a run, end of a reading)
+	// has come, and applied then in event-time order. Inputs shuffled
+	// within the window then leave a site exactly as inputs in order do,
+	// at the price of bundles that follow the inputs by the window. 0 (the
+	// default) applies every input on arrival. At most Lateness.
+	Reorder time.Duration
 	// KeepRuns is how many weather runs an actor keeps; 0 means 4.
 	KeepRuns int
 	// CoverageWindow is the number of settled forecasts per (lead bucket,
@@ -205,6 +213,12 @@ type Actor struct {
 
 	cells  []cell // [bucket*len(levels)+level]
 	events []conformal.Event
+
+	// The reorder window (Config.Reorder): inputs held, in order, and the
+	// latest event time held or seen.
+	held     []heldInput
+	heldMax  time.Time
+	released []heldInput // scratch of hold
 
 	siteHash uint64 // seeds tieBreak
 

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"math"
 	"sync"
+	"sync/atomic"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -80,7 +81,7 @@ func ServeDurable(ctx context.Context, nc *nats.Conn, p *Pool, snaps *DurableSna
 		return fmt.Errorf("worker: lease bucket: %w", err)
 	}
 	d := &durable{
-		js: js, pool: p, kv: snapKV, snaps: snaps, log: o.Logger, m: o.Metrics,
+		js: js, pool: p, snaps: snaps, log: o.Logger, m: o.Metrics, workerID: o.WorkerID,
 		sitesOf: make([][]string, parts), running: map[int]*partRun{},
 	}
 	for _, site := range p.Sites() {
@@ -90,7 +91,7 @@ func ServeDurable(ctx context.Context, nc *nats.Conn, p *Pool, snaps *DurableSna
 		}
 		d.sitesOf[part] = append(d.sitesOf[part], site)
 	}
-	snaps.start(snapKV, o.Logger, o.Metrics)
+	snaps.start(js, snapKV, o.Logger, o.Metrics)
 
 	poolCtx, stopPool := context.WithCancel(context.Background())
 	poolDone := make(chan error, 1)
@@ -99,6 +100,9 @@ func ServeDurable(ctx context.Context, nc *nats.Conn, p *Pool, snaps *DurableSna
 	mgr, err := lease.New(leaseKV, o.WorkerID, parts, lease.Options{
 		OnGained: d.gained, OnLost: d.lost, Logger: o.Logger,
 	})
+	if err == nil {
+		d.holds = mgr.Holds
+	}
 	if err != nil {
 		stopPool()
 		<-poolDone
@@ -152,21 +156,29 @@ func ServeDurable(ctx context.Context, nc *nats.Conn, p *Pool, snaps *DurableSna
 type durable struct {
 	js    jetstream.JetStream
 	pool  *Pool
-	kv    jetstream.KeyValue
 	snaps *DurableSnapshots
 	log   *zap.Logger
 	m     *Metrics
 
-	sitesOf [][]string // by partition
+	sitesOf   [][]string       // by partition
+	holds     func(p int) bool // the lease manager's Holds
+	workerID  string
+	consumers atomic.Uint64 // consumers made: names each one
 
 	mu      sync.Mutex
 	running map[int]*partRun
+	closing bool           // set by stopAll: no partition starts after it
+	stops   sync.WaitGroup // partitions being stopped
 }
 
 // partRun is one partition being consumed.
 type partRun struct {
 	cancel context.CancelFunc
 	done   chan struct{}
+	// restored is set once the partition's sites hold their snapshots:
+	// only then are they the partition's state, to be written back when
+	// the partition goes.
+	restored atomic.Bool
 }
 
 // gained starts consuming partition part (called by the lease manager).
@@ -174,12 +186,18 @@ func (d *durable) gained(part int) {
 	ctx, cancel := context.WithCancel(context.Background())
 	r := &partRun{cancel: cancel, done: make(chan struct{})}
 	d.mu.Lock()
+	if d.closing {
+		// Gained while shutting down: the lease goes back untouched.
+		d.mu.Unlock()
+		cancel()
+		return
+	}
 	d.running[part] = r
 	d.m.PartitionsOwned.Set(float64(len(d.running)))
 	d.mu.Unlock()
 	go func() {
 		defer close(r.done)
-		d.consume(ctx, part)
+		d.consume(ctx, part, r)
 	}()
 }
 
@@ -190,10 +208,14 @@ func (d *durable) lost(part int) {
 	r := d.running[part]
 	delete(d.running, part)
 	d.m.PartitionsOwned.Set(float64(len(d.running)))
+	if r != nil {
+		d.stops.Add(1)
+	}
 	d.mu.Unlock()
 	if r == nil {
 		return
 	}
+	defer d.stops.Done()
 	d.stop(part, r)
 }
 
@@ -220,27 +242,37 @@ func (d *durable) snapshotOwned(ctx context.Context) {
 	}
 }
 
-// stopAll stops every partition, as lost does.
+// stopAll stops every partition, as lost does, and waits until every
+// partition being stopped (here or by lost) has written its snapshots; no
+// partition starts afterwards.
 func (d *durable) stopAll() {
 	d.mu.Lock()
 	runs := d.running
 	d.running = map[int]*partRun{}
+	d.closing = true
+	d.stops.Add(len(runs))
 	d.mu.Unlock()
-	var wg sync.WaitGroup
 	for part, r := range runs {
-		wg.Add(1)
 		go func() {
-			defer wg.Done()
+			defer d.stops.Done()
 			d.stop(part, r)
 		}()
 	}
-	wg.Wait()
+	d.stops.Wait()
 }
 
 // stop ends a partition's consumer, then snapshots and writes its sites.
+// A partition lost before its sites were restored writes nothing: the
+// pool's state of those sites is not the partition's (it is what this
+// worker held when it last owned them, or nothing), and writing it would
+// set the next owner back.
 func (d *durable) stop(part int, r *partRun) {
 	r.cancel()
 	<-r.done
+	if !r.restored.Load() {
+		d.log.Info("partition lost before its restore ended: no snapshot written", zap.Int("partition", part))
+		return
+	}
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
 	defer cancel()
 	for _, site := range d.sitesOf[part] {
@@ -257,7 +289,7 @@ func (d *durable) stop(part int, r *partRun) {
 
 // consume restores partition part's sites and applies its inputs until
 // ctx ends, riding through errors (a server restart) with a back-off.
-func (d *durable) consume(ctx context.Context, part int) {
+func (d *durable) consume(ctx context.Context, part int, r *partRun) {
 	start, err := d.restore(ctx, part)
 	for err != nil {
 		if ctx.Err() != nil {
@@ -269,9 +301,21 @@ func (d *durable) consume(ctx context.Context, part int) {
 		}
 		start, err = d.restore(ctx, part)
 	}
+	if ctx.Err() != nil {
+		return
+	}
+	r.restored.Store(true)
 	d.log.Info("partition gained", zap.Int("partition", part), zap.Int("sites", len(d.sitesOf[part])), zap.Uint64("from_seq", start))
 	backoff := 100 * time.Millisecond
 	for ctx.Err() == nil {
+		if !d.holds(part) {
+			// The lease lapsed (this worker stalled): the manager is about
+			// to drop it, or will renew it if no one took it. Wait.
+			if !sleepCtx(ctx, backoff) {
+				return
+			}
+			continue
+		}
 		next, err := d.consumeFrom(ctx, part, start)
 		if next > start {
 			start, backoff = next, 100*time.Millisecond
@@ -292,14 +336,15 @@ func (d *durable) consume(ctx context.Context, part int) {
 func (d *durable) restore(ctx context.Context, part int) (uint64, error) {
 	low := uint64(math.MaxUint64)
 	for _, site := range d.sitesOf[part] {
-		var data []byte
-		e, err := d.kv.Get(ctx, site)
-		switch {
-		case errors.Is(err, jetstream.ErrKeyNotFound):
-		case err != nil:
+		// From the leader: the snapshot the previous owner wrote just
+		// before letting the lease go must be the one restored.
+		v, err := jet.Latest(ctx, d.js, jet.SnapshotBucket, site)
+		if err != nil {
 			return 0, fmt.Errorf("snapshot of %s: %w", site, err)
-		default:
-			data = e.Value()
+		}
+		var data []byte
+		if v.Found {
+			data = v.Data
 		}
 		seq, err := d.pool.Restore(ctx, site, data)
 		if err != nil {
@@ -322,10 +367,20 @@ func (d *durable) restore(ctx context.Context, part int) (uint64, error) {
 // the consumer fails; it returns the sequence after the last one
 // submitted.
 func (d *durable) consumeFrom(ctx context.Context, part int, start uint64) (uint64, error) {
-	cons, err := jet.PartitionConsumer(ctx, d.js, part, jet.ConsumerOptions{StartSeq: start})
+	// A consumer of this worker's alone, made for this read and deleted
+	// after it: no other process can take its deliveries.
+	owner := fmt.Sprintf("%s-%d", d.workerID, d.consumers.Add(1))
+	cons, err := jet.PartitionConsumer(ctx, d.js, part, jet.ConsumerOptions{StartSeq: start, Owner: owner})
 	if err != nil {
 		return start, err
 	}
+	defer func() {
+		// Best effort: a consumer left behind (the server unreachable)
+		// is deleted by the server once inactive.
+		dctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)
+		defer cancel()
+		_ = d.js.DeleteConsumer(dctx, jet.InputStream, cons.CachedInfo().Name)
+	}()
 	it, err := cons.Messages()
 	if err != nil {
 		return start, err
@@ -340,6 +395,7 @@ func (d *durable) consumeFrom(ctx context.Context, part int, start uint64) (uint
 		it.Stop()
 	}()
 	next := start
+	var delivered uint64 // the consumer sequence of the last delivery
 	for {
 		msg, err := it.Next()
 		if err != nil {
@@ -349,6 +405,17 @@ func (d *durable) consumeFrom(ctx context.Context, part int, start uint64) (uint
 		if err != nil {
 			_ = msg.Term()
 			continue
+		}
+		// The consumer numbers its deliveries 1, 2, 3... (redeliveries
+		// included); a gap would mean that another process pulled from it.
+		// The inputs past a gap are not applied: the consumer is made
+		// again from the first one this worker did not get.
+		if meta.Sequence.Consumer != delivered+1 {
+			return next, fmt.Errorf("%w: delivery %d after %d", errDeliveryGap, meta.Sequence.Consumer, delivered)
+		}
+		delivered = meta.Sequence.Consumer
+		if !d.holds(part) {
+			return next, errLeaseLapsed
 		}
 		subject, _, err := jet.InputSubject(msg.Subject())
 		if err != nil {
@@ -362,6 +429,11 @@ func (d *durable) consumeFrom(ctx context.Context, part int, start uint64) (uint
 		next = seq + 1
 	}
 }
+
+var (
+	errDeliveryGap = errors.New("another process reads the partition's consumer")
+	errLeaseLapsed = errors.New("the partition's lease lapsed")
+)
 
 func sleepCtx(ctx context.Context, d time.Duration) bool {
 	t := time.NewTimer(d)
@@ -381,6 +453,7 @@ func sleepCtx(ctx context.Context, d time.Duration) bool {
 type DurableSnapshots struct {
 	q    chan snapJob
 	done chan struct{}
+	js   jetstream.JetStream
 	kv   jetstream.KeyValue
 	log  *zap.Logger
 	m    *Metrics
@@ -426,8 +499,8 @@ func (s *DurableSnapshots) sync(ctx context.Context, site string, seq uint64, da
 	}
 }
 
-func (s *DurableSnapshots) start(kv jetstream.KeyValue, log *zap.Logger, m *Metrics) {
-	s.kv, s.log, s.m = kv, log, m
+func (s *DurableSnapshots) start(js jetstream.JetStream, kv jetstream.KeyValue, log *zap.Logger, m *Metrics) {
+	s.js, s.kv, s.log, s.m = js, kv, log, m
 	go func() {
 		defer close(s.done)
 		for j := range s.q {
@@ -454,12 +527,24 @@ func (s *DurableSnapshots) stop() {
 	})
 }
 
-// write puts one snapshot in the bucket, retrying a few times.
+// write puts one snapshot in the bucket, retrying a few times. A site's
+// snapshots only move forward: one covering less of the input stream than
+// the snapshot stored is not written. So a worker that lost a lease
+// without knowing it (paused past the lease's expiry) cannot overwrite the
+// newer state its successor wrote: the check and the write are one
+// compare-and-set on the key's revision, read from the stream's leader.
 func (s *DurableSnapshots) write(ctx context.Context, site string, seq uint64, data []byte) error {
 	var err error
 	for try := 0; try < 5; try++ {
-		if _, err = s.kv.Put(ctx, site, data); err == nil {
-			s.m.SnapshotBytes.Observe(float64(len(data)))
+		var written, kept bool
+		if written, kept, err = s.writeOnce(ctx, site, seq, data); err == nil {
+			if written {
+				s.m.SnapshotBytes.Observe(float64(len(data)))
+			}
+			if kept {
+				s.log.Info("snapshot not written: the stored one covers more of the stream",
+					zap.String("site", site), zap.Uint64("seq", seq))
+			}
 			return nil
 		}
 		if !sleepCtx(ctx, time.Duration(try+1)*200*time.Millisecond) {
@@ -467,4 +552,26 @@ func (s *DurableSnapshots) write(ctx context.Context, site string, seq uint64, d
 		}
 	}
 	return fmt.Errorf("snapshot of %s at sequence %d: %w", site, seq, err)
+}
+
+// writeOnce makes one attempt of write; kept reports that a newer
+// snapshot was found and left in place.
+func (s *DurableSnapshots) writeOnce(ctx context.Context, site string, seq uint64, data []byte) (written, kept bool, err error) {
+	cur, err := jet.Latest(ctx, s.js, jet.SnapshotBucket, site)
+	if err != nil {
+		return false, false, err
+	}
+	if cur.Found {
+		// A stored value that is not a readable snapshot (another
+		// version, corrupt) is replaced.
+		if stored, err := SnapshotSeq(cur.Data); err == nil && stored > seq {
+			return false, true, nil
+		}
+	}
+	if cur.Revision == 0 {
+		_, err = s.kv.Create(ctx, site, data)
+	} else {
+		_, err = s.kv.Update(ctx, site, data, cur.Revision)
+	}
+	return err == nil, false, err
 }

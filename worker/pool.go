@@ -117,6 +117,9 @@ func (p *Pool) Applied() (weather, meter int64) {
 // NewPool builds actors for every site.
 func NewPool(sites []model.Site, cfg Config, out Output, o PoolOptions) (*Pool, error) {
 	cfg = cfg.WithDefaults()
+	if cfg.Reorder < 0 || cfg.Reorder > cfg.Lateness {
+		return nil, fmt.Errorf("worker: reorder window %s: must lie between 0 and the lateness %s", cfg.Reorder, cfg.Lateness)
+	}
 	if o.Shards <= 0 {
 		o.Shards = 2
 	}
@@ -297,17 +300,52 @@ func (p *Pool) apply(sh *shard, it item) {
 	}
 	h := p.health[it.site]
 	h.inputs.Add(1)
-	applied := 0
-	switch it.kind {
-	case stream.InputWeather:
-		runs, err := p.dec.Weather(it.site, it.data)
+	var b *model.Bundle
+	if p.cfg.Reorder > 0 {
+		key, err := p.eventTime(it)
 		if err != nil {
 			p.reject(it.subject, it.site, len(it.data), err)
+		} else {
+			for _, in := range a.hold(heldInput{kind: it.kind, subject: it.subject, data: it.data, key: key}) {
+				if nb := p.applyInput(a, h, it.site, in.kind, in.subject, in.data, t0); nb != nil {
+					b = nb
+				}
+			}
+		}
+	} else {
+		b = p.applyInput(a, h, it.site, it.kind, it.subject, it.data, t0)
+	}
+	left := p.queued[it.site].Add(-1)
+	p.m.QueueDepth.Dec()
+	if b == nil {
+		return
+	}
+	if left > 0 && !p.o.PublishAll {
+		p.m.Coalesced.Inc()
+	} else if err := p.out.Bundle(b); err != nil {
+		p.log.Warn("publish bundle", zap.String("site", it.site), zap.Error(err))
+	} else {
+		p.m.Published.Inc()
+	}
+	p.m.RefreshSeconds.Observe(p.o.Clock().Sub(t0).Seconds())
+}
+
+// applyInput applies one input message to the site's actor, rejecting
+// what the actor refuses, and refreshes the actor if anything was applied;
+// it publishes the alarm events and returns the bundle (nil if nothing was
+// applied).
+func (p *Pool) applyInput(a *Actor, h *siteHealth, site string, kind stream.InputKind, subject string, data []byte, t0 time.Time) *model.Bundle {
+	applied := 0
+	switch kind {
+	case stream.InputWeather:
+		runs, err := p.dec.Weather(site, data)
+		if err != nil {
+			p.reject(subject, site, len(data), err)
 			break
 		}
 		for i := range runs {
 			if err := a.Weather(&runs[i]); err != nil {
-				p.reject(it.subject, it.site, len(it.data), err)
+				p.reject(subject, site, len(data), err)
 				continue
 			}
 			applied++
@@ -318,14 +356,14 @@ func (p *Pool) apply(sh *shard, it item) {
 			h.lastWeather.Store(t0.UnixNano())
 		}
 	case stream.InputMeter:
-		rs, err := p.dec.Meter(it.site, it.data)
+		rs, err := p.dec.Meter(site, data)
 		if err != nil {
-			p.reject(it.subject, it.site, len(it.data), err)
+			p.reject(subject, site, len(data), err)
 			break
 		}
 		for i := range rs {
 			if err := a.Meter(&rs[i]); err != nil {
-				p.reject(it.subject, it.site, len(it.data), err)
+				p.reject(subject, site, len(data), err)
 				continue
 			}
 			applied++
@@ -337,10 +375,8 @@ func (p *Pool) apply(sh *shard, it item) {
 		}
 		p.m.Settled.Add(float64(applied))
 	}
-	left := p.queued[it.site].Add(-1)
-	p.m.QueueDepth.Dec()
 	if applied == 0 {
-		return
+		return nil
 	}
 	b := a.Refresh()
 	for _, ev := range a.Events() {
@@ -351,21 +387,43 @@ func (p *Pool) apply(sh *shard, it item) {
 			p.m.AlarmsActive.Dec()
 		}
 		if err := p.out.Alarm(ev); err != nil {
-			p.log.Warn("publish alarm", zap.String("site", it.site), zap.Error(err))
+			p.log.Warn("publish alarm", zap.String("site", site), zap.Error(err))
 		}
 	}
-	if b == nil {
-		return
+	if b != nil {
+		p.m.Refreshes.Inc()
 	}
-	p.m.Refreshes.Inc()
-	if left > 0 && !p.o.PublishAll {
-		p.m.Coalesced.Inc()
-	} else if err := p.out.Bundle(b); err != nil {
-		p.log.Warn("publish bundle", zap.String("site", it.site), zap.Error(err))
-	} else {
-		p.m.Published.Inc()
+	return b
+}
+
+// eventTime returns an input message's event time for the reorder
+// window: the latest issue time of its runs, or the latest end of its
+// readings.
+func (p *Pool) eventTime(it item) (time.Time, error) {
+	var t time.Time
+	switch it.kind {
+	case stream.InputWeather:
+		runs, err := p.dec.Weather(it.site, it.data)
+		if err != nil {
+			return t, err
+		}
+		for i := range runs {
+			if runs[i].IssuedAt.After(t) {
+				t = runs[i].IssuedAt
+			}
+		}
+	case stream.InputMeter:
+		rs, err := p.dec.Meter(it.site, it.data)
+		if err != nil {
+			return t, err
+		}
+		for i := range rs {
+			if e := rs[i].End(); e.After(t) {
+				t = e
+			}
+		}
 	}
-	p.m.RefreshSeconds.Observe(p.o.Clock().Sub(t0).Seconds())
+	return t, nil
 }
 
 // afterSeq records that the input at it.seq is applied to the site, and

@@ -5,7 +5,7 @@ package worker
 // each actor and replays the input stream from the snapshot's sequence,
 // and ends in the state a run without the restart would be in.
 //
-// # Layout, format version 1
+// # Layout, format version 2
 //
 // All integers are little-endian; a float is its IEEE 754 bits (NaN
 // payloads and signed zeros kept); a time is its Unix seconds (int64) and
@@ -48,6 +48,10 @@ package worker
 //	             (strings), level (float), lead bucket (string), target,
 //	             observed (floats), window (int64), p-value (float), event
 //	             time (time), reason (string)
+//	held         the reorder window (Config.Reorder): the latest event time
+//	             held or seen (time), count of inputs held; each, in order:
+//	             kind (byte: 1 weather, 2 meter), subject (string), event
+//	             time (time), payload (bytes)
 //	model        the forecaster's state (nested, model.Snapshotter)
 //	crc          CRC-32 (IEEE) of every byte before it (uint32)
 //
@@ -56,6 +60,9 @@ package worker
 // availability, driver, weather run age and latest power (floats), night
 // flag (byte), and the weather row it was made from: 1 + the index of its
 // run in runs (uint32, 0 for none) and the row's index in the run (uint32).
+//
+// Version 1 is version 2 without the held section; it is read as a
+// snapshot with nothing held (written before the reorder window existed).
 //
 // Everything is written in a fixed order (no map is walked), so the same
 // state gives the same bytes. Caches and scratch are left out and start
@@ -84,6 +91,7 @@ import (
 
 	"github.com/plumb-forecast/plumb/conformal"
 	"github.com/plumb-forecast/plumb/model"
+	"github.com/plumb-forecast/plumb/stream"
 )
 
 // Errors of Snapshot and RestoreActor, wrapped by the errors they return.
@@ -106,7 +114,10 @@ var (
 
 const (
 	snapshotMagic   = "PLSN"
-	snapshotVersion = 1
+	snapshotVersion = 2
+	// oldestSnapshotVersion is the oldest version this build reads (and
+	// migrates).
+	oldestSnapshotVersion = 1
 	// maxMinutes bounds a decoded interval or step length (a year).
 	maxMinutes = 366 * 24 * 60
 	// A decoded time is the zero time or lies in [1900, 2300), far wider
@@ -286,6 +297,16 @@ func (a *Actor) Snapshot(seq uint64) ([]byte, error) {
 		w.f64(e.PValue)
 		w.time(e.EventTime)
 		w.str(e.Reason)
+	}
+
+	w.time(a.heldMax)
+	w.u32(len(a.held))
+	for i := range a.held {
+		h := &a.held[i]
+		w.u8(byte(h.kind))
+		w.str(h.subject)
+		w.time(h.key)
+		w.blob(h.data)
 	}
 
 	w.blob(fstate)
@@ -530,8 +551,9 @@ func RestoreActor(site model.Site, cfg Config, data []byte) (a *Actor, seq uint6
 	if len(data) < 6 || string(data[:4]) != snapshotMagic {
 		return fail(fmt.Errorf("%w: not a snapshot (bad magic)", ErrSnapshotCorrupt))
 	}
-	if v := binary.LittleEndian.Uint16(data[4:]); v != snapshotVersion {
-		return fail(fmt.Errorf("%w: version %d, this build reads version %d", ErrSnapshotVersion, v, snapshotVersion))
+	version := binary.LittleEndian.Uint16(data[4:])
+	if version < oldestSnapshotVersion || version > snapshotVersion {
+		return fail(fmt.Errorf("%w: version %d, this build reads versions %d to %d", ErrSnapshotVersion, version, oldestSnapshotVersion, snapshotVersion))
 	}
 	if len(data) < 10 {
 		return fail(fmt.Errorf("%w: %d bytes, truncated", ErrSnapshotCorrupt, len(data)))
@@ -553,10 +575,30 @@ func RestoreActor(site model.Site, cfg Config, data []byte) (a *Actor, seq uint6
 	if err != nil {
 		return fail(err)
 	}
-	if err := a.readState(r, fs); err != nil {
+	if err := a.readState(r, fs, version); err != nil {
 		return fail(err)
 	}
 	return a, seq, nil
+}
+
+// SnapshotSeq returns the input-stream sequence a snapshot covers, read
+// from its header (the checksum is not checked: RestoreActor does).
+func SnapshotSeq(data []byte) (uint64, error) {
+	if len(data) < 6 || string(data[:4]) != snapshotMagic {
+		return 0, fmt.Errorf("%w: not a snapshot (bad magic)", ErrSnapshotCorrupt)
+	}
+	if v := binary.LittleEndian.Uint16(data[4:]); v < oldestSnapshotVersion || v > snapshotVersion {
+		return 0, fmt.Errorf("%w: version %d, this build reads versions %d to %d", ErrSnapshotVersion, v, oldestSnapshotVersion, snapshotVersion)
+	}
+	r := &snapReader{b: data[6:]}
+	r.str()
+	r.str()
+	r.take(8 * r.count("levels", 8, 1<<16))
+	r.take(8 * r.count("bucket edges", 8, 1<<16))
+	r.str()
+	r.str()
+	seq := r.u64()
+	return seq, r.err
 }
 
 // readHeader checks a snapshot's header against the actor and returns its
@@ -595,7 +637,7 @@ func (a *Actor) readHeader(r *snapReader) (uint64, error) {
 }
 
 // readState reads the state after the header into a, fresh from NewActor.
-func (a *Actor) readState(r *snapReader, fs model.Snapshotter) error {
+func (a *Actor) readState(r *snapReader, fs model.Snapshotter, version uint16) error {
 	nl, nb := len(a.cfg.Levels), a.cfg.Buckets.Len()
 	a.now = r.time()
 	a.lastMeterEnd = r.time()
@@ -724,6 +766,25 @@ func (a *Actor) readState(r *snapReader, fs model.Snapshotter) error {
 		e.EventTime = r.time()
 		e.Reason = r.str()
 		a.events = append(a.events, e)
+	}
+
+	if version >= 2 {
+		a.heldMax = r.time()
+		nh := r.count("held inputs", 25, math.MaxInt32)
+		for range nh {
+			if r.err != nil {
+				break
+			}
+			h := heldInput{kind: stream.InputKind(r.u8()), subject: r.str(), key: r.time()}
+			h.data = slices.Clone(r.blob())
+			if r.err == nil && h.kind != stream.InputWeather && h.kind != stream.InputMeter {
+				r.fail("held input of kind %d", h.kind)
+			}
+			if r.err == nil && len(a.held) > 0 && a.held[len(a.held)-1].before(&h) > 0 {
+				r.fail("held inputs out of order")
+			}
+			a.held = append(a.held, h)
+		}
 	}
 
 	fstate := r.blob()

@@ -638,3 +638,45 @@ func TestSnapshotHasNoSideEffect(t *testing.T) {
 		})
 	}
 }
+
+// TestSnapshotVersion1Migrates: a snapshot of format version 1 (written
+// before the reorder window: no held section) restores as the same state
+// with nothing held, and is written back as version 2.
+func TestSnapshotVersion1Migrates(t *testing.T) {
+	site := testSites()[1]
+	cfg := snapConfig(t, "baseline", conformal.MethodACI)
+	a, err := NewActor(site, cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, x := range inputs(variedFeed(site, 2, 23)) {
+		apply(t, a, x)
+	}
+	v2 := snapshot(t, a, 41)
+	fstate, err := a.fc.(model.Snapshotter).MarshalBinary()
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Version 1: the same bytes without the held section (a time and a
+	// zero count, 16 bytes) before the forecaster's state.
+	at := len(v2) - 4 - (4 + len(fstate)) - 16
+	if n := binary.LittleEndian.Uint32(v2[at+12:]); n != 0 {
+		t.Fatalf("held count %d where 0 was expected: the layout moved", n)
+	}
+	v1 := slices.Concat(v2[:at], v2[at+16:len(v2)-4])
+	binary.LittleEndian.PutUint16(v1[4:], 1)
+	v1 = binary.LittleEndian.AppendUint32(v1, crc32.ChecksumIEEE(v1))
+	if seq, err := SnapshotSeq(v1); err != nil || seq != 41 {
+		t.Fatalf("SnapshotSeq of version 1: %d, %v", seq, err)
+	}
+	b, seq, err := RestoreActor(site, cfg, v1)
+	if err != nil || seq != 41 {
+		t.Fatalf("version 1 refused: %v (sequence %d)", err, seq)
+	}
+	if b.Held() != 0 {
+		t.Errorf("%d inputs held after a version 1 restore", b.Held())
+	}
+	if again := snapshot(t, b, 41); !bytes.Equal(again, v2) {
+		t.Error("a version 1 snapshot restores to another state than the version 2 one")
+	}
+}

@@ -67,6 +67,7 @@ type workerFlags struct {
 	window     int
 	tolerance  float64
 	shards     int
+	reorder    time.Duration
 }
 
 func (w *workerFlags) register(fs *flag.FlagSet) {
@@ -79,6 +80,7 @@ func (w *workerFlags) register(fs *flag.FlagSet) {
 	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which live coverage is judged")
 	fs.Float64Var(&w.tolerance, "alarm-tolerance", 0.05, "raise a coverage alarm when live coverage is further than this from the level (and the Kupiec test rejects at 1 %)")
 	fs.IntVar(&w.shards, "shards", 2, "goroutines the site actors are spread over")
+	fs.DurationVar(&w.reorder, "reorder-window", 0, "hold each input until one this much later in event time has come, and apply them in event-time order: inputs shuffled within the window (several meter gateways, retries) then give exactly the state inputs in order give, and bundles lag by the window (0: apply on arrival; at most 6h, the lateness)")
 }
 
 func (w *workerFlags) config() (worker.Config, error) {
@@ -89,6 +91,9 @@ func (w *workerFlags) config() (worker.Config, error) {
 	if w.horizon < 0 {
 		return worker.Config{}, fmt.Errorf("--horizon %s is negative", w.horizon)
 	}
+	if w.reorder < 0 || w.reorder > 6*time.Hour {
+		return worker.Config{}, fmt.Errorf("--reorder-window %s must lie between 0 and 6h (the lateness)", w.reorder)
+	}
 	if w.gamma <= 0 || w.gamma >= 1 {
 		return worker.Config{}, fmt.Errorf("--gamma %v must lie in (0, 1)", w.gamma)
 	}
@@ -98,6 +103,7 @@ func (w *workerFlags) config() (worker.Config, error) {
 		CoverageWindow: w.window,
 		Calibrator:     conformal.Options{Method: w.calibrator, Gamma: w.gamma},
 		Alarm:          conformal.AlarmOptions{Tolerance: w.tolerance},
+		Reorder:        w.reorder,
 	}
 	if _, err := conformal.New(0.5, cfg.Calibrator); err != nil {
 		return worker.Config{}, err

@@ -1,6 +1,7 @@
 package jet
 
 import (
+	"cmp"
 	"context"
 	"errors"
 	"fmt"
@@ -35,7 +36,19 @@ type ConsumerOptions struct {
 	// AckWait is how long the server waits for an acknowledgement before
 	// delivering a message again; 0 means 30 seconds.
 	AckWait time.Duration
+	// Owner, if not empty, names a consumer of the partition's current
+	// reader alone: plumb-in-<p>-<Owner> (a KV-key-like token: letters,
+	// digits, '-', '_'). A worker that lost its lease without knowing it
+	// yet then reads from a consumer of its own, and cannot take deliveries
+	// from its successor's. Such a consumer is deleted by the server after
+	// InactiveAfter without a pull.
+	Owner string
+	// InactiveAfter: see Owner; 0 means 5 minutes. Not used without Owner.
+	InactiveAfter time.Duration
 }
+
+// DefaultInactiveAfter is the default ConsumerOptions.InactiveAfter.
+const DefaultInactiveAfter = 5 * time.Minute
 
 // ConsumerName returns the name of the durable consumer of partition p:
 // plumb-in-<p>. The consumer outlives its worker, so whoever leases the
@@ -64,14 +77,23 @@ func PartitionConsumer(ctx context.Context, js jetstream.JetStream, p int, o Con
 		return nil, fmt.Errorf("jet: consumer options: negative MaxAckPending or AckWait")
 	}
 	name := ConsumerName(p)
+	var inactive time.Duration
+	if o.Owner != "" {
+		if !validOwner(o.Owner) {
+			return nil, fmt.Errorf("jet: consumer owner %q: letters, digits, '-' and '_' only", o.Owner)
+		}
+		name += "-" + o.Owner
+		inactive = cmp.Or(o.InactiveAfter, DefaultInactiveAfter)
+	}
 	cfg := jetstream.ConsumerConfig{
-		Durable:       name,
-		Description:   "plumb inputs of partition " + strconv.Itoa(p),
-		FilterSubject: PartitionFilter(p),
-		AckPolicy:     jetstream.AckExplicitPolicy,
-		AckWait:       o.AckWait,
-		MaxAckPending: o.MaxAckPending,
-		DeliverPolicy: jetstream.DeliverAllPolicy,
+		InactiveThreshold: inactive,
+		Durable:           name,
+		Description:       "plumb inputs of partition " + strconv.Itoa(p),
+		FilterSubject:     PartitionFilter(p),
+		AckPolicy:         jetstream.AckExplicitPolicy,
+		AckWait:           o.AckWait,
+		MaxAckPending:     o.MaxAckPending,
+		DeliverPolicy:     jetstream.DeliverAllPolicy,
 	}
 	if o.StartSeq > 0 {
 		cfg.DeliverPolicy = jetstream.DeliverByStartSequencePolicy
@@ -100,4 +122,18 @@ func PartitionConsumer(ctx context.Context, js jetstream.JetStream, p int, o Con
 		return nil, fmt.Errorf("jet: consumer %s: %w", name, err)
 	}
 	return c, nil
+}
+
+func validOwner(s string) bool {
+	if len(s) > 64 {
+		return false
+	}
+	for _, r := range s {
+		switch {
+		case r >= 'a' && r <= 'z', r >= 'A' && r <= 'Z', r >= '0' && r <= '9', r == '-', r == '_':
+		default:
+			return false
+		}
+	}
+	return true
 }

@@ -129,6 +129,31 @@ func TestPartitionConsumer(t *testing.T) {
 	if got := fetchSeqs(c, len(wantSeqs)-2); !slices.Equal(got, wantSeqs[2:]) {
 		t.Errorf("consumer from seq %d read %v, want %v", from, got, wantSeqs[2:])
 	}
+	// Two owners' consumers of the same partition are apart: each gets
+	// every input from its start (a worker that lost its lease without
+	// knowing cannot take its successor's deliveries), and is deleted by
+	// the server once inactive.
+	a, err := jet.PartitionConsumer(ctx, js, 0, jet.ConsumerOptions{StartSeq: from, Owner: "w1-1"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, err := jet.PartitionConsumer(ctx, js, 0, jet.ConsumerOptions{StartSeq: wantSeqs[0], Owner: "w2-1", InactiveAfter: time.Minute})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if ia, ib := a.CachedInfo(), b.CachedInfo(); ia.Name != "plumb-in-0-w1-1" || ib.Name != "plumb-in-0-w2-1" ||
+		ia.Config.InactiveThreshold != jet.DefaultInactiveAfter || ib.Config.InactiveThreshold != time.Minute {
+		t.Errorf("owned consumers %q (inactive after %v), %q (%v)", ia.Name, ia.Config.InactiveThreshold, ib.Name, ib.Config.InactiveThreshold)
+	}
+	if got := fetchSeqs(a, len(wantSeqs)-2); !slices.Equal(got, wantSeqs[2:]) {
+		t.Errorf("owner w1-1 read %v, want %v", got, wantSeqs[2:])
+	}
+	if got := fetchSeqs(b, len(wantSeqs)); !slices.Equal(got, wantSeqs) {
+		t.Errorf("owner w2-1 read %v, want %v", got, wantSeqs)
+	}
+	if _, err := jet.PartitionConsumer(ctx, js, 0, jet.ConsumerOptions{StartSeq: 1, Owner: "w1.x"}); err == nil {
+		t.Error("an owner with a dot was taken")
+	}
 	// Asking again for the same start replays from it again, although
 	// the consumer has acknowledged past it: a worker restored from
 	// snapshots that cover less than was acknowledged (a crash between

@@ -86,12 +86,16 @@ type Options struct {
 	// worker may count on it; nil means no call.
 	OnGained func(p int)
 	// OnLost is called when the worker loses partition p, or releases it;
-	// the worker must stop working on p before it returns (someone else
-	// may take p as soon as it has). nil means no call.
+	// the worker must stop working on p before it returns: a released
+	// lease is deleted only then (the manager renews it meanwhile), so the
+	// next holder finds everything the worker wrote for p. nil means no
+	// call.
 	//
-	// OnGained and OnLost are called from Run's goroutine, one at a time, in
-	// the order of events. They must return promptly, well within
-	// RenewEvery: Run renews nothing while they run.
+	// OnGained is called from Run's goroutine and must return promptly
+	// (Run renews nothing while it runs). OnLost runs on a goroutine of
+	// its own and may take its time (a final snapshot); for any one
+	// partition the calls alternate, OnGained(p) never coming before the
+	// previous OnLost(p) has returned.
 	OnLost func(p int)
 	// Logger; nil means no logging.
 	Logger *zap.Logger
@@ -125,12 +129,17 @@ type Manager struct {
 
 	mu    sync.Mutex
 	owned map[int]*held // guarded by mu; written only by Run's goroutine
+
+	// Run's goroutine only.
+	losing   map[int]bool // OnLost running
+	lostDone chan int     // an OnLost returned
 }
 
 type held struct {
 	rev        uint64
 	validUntil time.Time // the holder gives the lease up at this time
 	renewAt    time.Time
+	releasing  bool // OnLost runs; the key goes when it returns
 }
 
 // holder is the value of lease and heartbeat keys.
@@ -170,7 +179,8 @@ func New(kv jetstream.KeyValue, worker string, partitions int, o Options) (*Mana
 		kv: kv, worker: worker, n: partitions, o: o,
 		log:   log.With(zap.String("worker", worker)),
 		value: value, start: int(h % uint32(partitions)),
-		owned: make(map[int]*held),
+		owned:  make(map[int]*held),
+		losing: make(map[int]bool), lostDone: make(chan int, partitions),
 	}, nil
 }
 
@@ -201,6 +211,18 @@ func (m *Manager) Owned() []int {
 	}
 	slices.Sort(ps)
 	return ps
+}
+
+// Holds reports whether the worker holds partition p's lease and its
+// validity has not run out on this machine's clock. A worker checks it
+// before acting for the partition: after a stall (a long pause, a
+// suspended process) the lease may have lapsed before Run learns of it,
+// and another worker may hold it already.
+func (m *Manager) Holds(p int) bool {
+	m.mu.Lock()
+	defer m.mu.Unlock()
+	h := m.owned[p]
+	return h != nil && !h.releasing && time.Now().Before(h.validUntil)
 }
 
 // Run acquires, renews and balances leases until ctx is cancelled, then
@@ -244,6 +266,14 @@ func (m *Manager) Run(ctx context.Context) error {
 			return m.releaseAll(context.WithoutCancel(ctx))
 		case <-timer.C:
 			next, workers = m.pass(ctx)
+		case p := <-m.lostDone:
+			m.lostReturned(ctx, p)
+			// The partition may be taken again, or by another worker.
+			if soon := time.Now().Add(settle); soon.Before(next) {
+				next = soon
+			} else {
+				continue
+			}
 		case e, ok := <-updates:
 			if !ok {
 				updates = nil // the watch ended; passes still run
@@ -319,13 +349,22 @@ func (m *Manager) pass(ctx context.Context) (time.Time, map[string]bool) {
 	}
 	workers[m.worker] = true
 	owned := m.Owned()
-	for _, p := range toRelease(owned, m.n, len(workers)) {
-		m.release(ctx, p)
+	var keep []int
+	for _, p := range owned {
+		if !m.owned[p].releasing {
+			keep = append(keep, p)
+		}
+	}
+	for _, p := range toRelease(keep, m.n, len(workers)) {
+		m.release(p)
 	}
 	want := aim(m.n, len(workers)) - len(owned)
 	for _, p := range candidates(m.n, m.start, owned, leases) {
 		if want <= 0 || ctx.Err() != nil {
 			break
+		}
+		if m.losing[p] {
+			continue // its OnLost has not returned
 		}
 		if m.acquire(ctx, p) {
 			want--
@@ -455,21 +494,62 @@ func (m *Manager) acquire(ctx context.Context, p int) bool {
 	return true
 }
 
-// lose forgets partition p and tells the worker.
+// lose forgets partition p and tells the worker (unless a release of p
+// already did).
 func (m *Manager) lose(p int) {
+	m.mu.Lock()
+	h := m.owned[p]
+	delete(m.owned, p)
+	m.mu.Unlock()
+	if h == nil || h.releasing {
+		return // OnLost runs already; its return deletes nothing now
+	}
+	m.callLost(p)
+}
+
+// callLost runs OnLost(p) on its own goroutine; Run learns of its return
+// through lostDone.
+func (m *Manager) callLost(p int) {
+	m.losing[p] = true
+	go func() {
+		if m.o.OnLost != nil {
+			m.o.OnLost(p)
+		}
+		m.lostDone <- p
+	}()
+}
+
+// release gives partition p up: OnLost runs while the lease is still
+// renewed, and its lease is deleted when OnLost returns (lostReturned).
+func (m *Manager) release(p int) {
+	h := m.owned[p]
+	if h == nil || h.releasing {
+		return
+	}
+	m.mu.Lock()
+	h.releasing = true
+	m.mu.Unlock()
+	m.log.Debug("lease: releasing", zap.Int("partition", p))
+	m.callLost(p)
+}
+
+// lostReturned ends the loss or release of p whose OnLost returned: a
+// lease still held (a release) is deleted.
+func (m *Manager) lostReturned(ctx context.Context, p int) error {
+	delete(m.losing, p)
+	h := m.owned[p]
+	if h == nil || !h.releasing {
+		return nil // lost meanwhile (not renewed in time, or taken)
+	}
 	m.mu.Lock()
 	delete(m.owned, p)
 	m.mu.Unlock()
-	if m.o.OnLost != nil {
-		m.o.OnLost(p)
-	}
+	return m.deleteLease(ctx, p, h.rev)
 }
 
-// release loses p, then deletes its lease if it still holds the revision
-// written last.
-func (m *Manager) release(ctx context.Context, p int) error {
-	rev := m.owned[p].rev
-	m.lose(p)
+// deleteLease deletes p's lease if it still holds the revision written
+// last.
+func (m *Manager) deleteLease(ctx context.Context, p int, rev uint64) error {
 	cctx, cancel := m.call(ctx)
 	defer cancel()
 	err := m.kv.Delete(cctx, leaseKey(p), jetstream.LastRevision(rev))
@@ -500,10 +580,26 @@ func (m *Manager) release(ctx context.Context, p int) error {
 	return nil
 }
 
+// releaseAll releases every lease held and waits for the losses and
+// releases under way, renewing what is still held meanwhile.
 func (m *Manager) releaseAll(ctx context.Context) error {
 	var errs []error
 	for _, p := range m.Owned() {
-		errs = append(errs, m.release(ctx, p))
+		m.release(p)
+	}
+	renew := time.NewTicker(m.every)
+	defer renew.Stop()
+	for len(m.losing) > 0 {
+		select {
+		case p := <-m.lostDone:
+			errs = append(errs, m.lostReturned(ctx, p))
+		case <-renew.C:
+			for _, p := range m.Owned() {
+				if h := m.owned[p]; !time.Now().Before(h.renewAt) {
+					m.renew(ctx, p, h)
+				}
+			}
+		}
 	}
 	cctx, cancel := m.call(ctx)
 	defer cancel()
