@@ -589,6 +589,14 @@ func TestPermissions(t *testing.T) {
 		if _, err := jet.PartitionConsumer(ctx, wjs, p, jet.ConsumerOptions{StartSeq: 2}); err != nil {
 			t.Errorf("worker: partition consumer from sequence 2: %v", err)
 		}
+		// A consumer of one read of a durable worker (named for it),
+		// and its deletion.
+		oc, err := jet.PartitionConsumer(ctx, wjs, p, jet.ConsumerOptions{StartSeq: 1, Owner: "worker-1-1"})
+		if err != nil {
+			t.Errorf("worker: owned partition consumer: %v", err)
+		} else if err := wjs.DeleteConsumer(ctx, jet.InputStream, oc.CachedInfo().Name); err != nil {
+			t.Errorf("worker: delete its consumer: %v", err)
+		}
 
 		// Snapshots of a few MB in the KV bucket, read back and watched
 		// (enough bytes for the server to ask for flow control).
@@ -605,6 +613,14 @@ func TestPermissions(t *testing.T) {
 		}
 		if e, err := kv.Get(ctx, site+"-0"); err != nil || !bytes.Equal(e.Value(), snap) {
 			t.Errorf("worker: get the snapshot: %v", err)
+		}
+		// The read from the stream leader a worker restores from, and
+		// the compare-and-set it writes with.
+		v, err := jet.Latest(ctx, wjs, jet.SnapshotBucket, site+"-0")
+		if err != nil || !bytes.Equal(v.Data, snap) {
+			t.Errorf("worker: read the snapshot from the leader: %v", err)
+		} else if _, err := kv.Update(ctx, site+"-0", snap, v.Revision); err != nil {
+			t.Errorf("worker: update the snapshot at its revision: %v", err)
 		}
 		w, err := kv.WatchAll(ctx, jetstream.IgnoreDeletes())
 		if err != nil {
