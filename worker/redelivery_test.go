@@ -169,6 +169,7 @@ func TestShuffledWithinWindowKeepsState(t *testing.T) {
 	if moved < len(inOrder)/4 {
 		t.Fatalf("only %d of %d inputs moved by the shuffle", moved, len(inOrder))
 	}
+	t.Logf("%d of %d inputs of %d sites arrive out of place (window %s), each twice", moved, len(inOrder), len(h.Sites), window)
 	submit := func(ms []msg, twice bool) func(p *Pool) {
 		return func(p *Pool) {
 			for i, m := range ms {
