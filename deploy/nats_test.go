@@ -410,7 +410,7 @@ func connectAs(t *testing.T, url, user string, pw map[string]string) (*nats.Conn
 	t.Helper()
 	v := &violations{user: user, ch: make(chan error, 64)}
 	nc, err := nats.Connect(url, nats.UserInfo(user, pw[passwordVars[user]]), nats.Name("deploy-test-"+user),
-		nats.ErrorHandler(v.handler))
+		nats.CustomInboxPrefix("_INBOX_"+user), nats.ErrorHandler(v.handler))
 	if err != nil {
 		t.Fatalf("connect as %s: %v", user, err)
 	}
@@ -511,6 +511,14 @@ func TestPermissions(t *testing.T) {
 		}
 		pnc.Flush()
 		pErrs.expect(t, "subscription", "plumb.out.>")
+		// Replies to other users (their inboxes) are out of reach.
+		for _, subj := range []string{"_INBOX_worker.>", "_INBOX.>"} {
+			if _, err := pnc.Subscribe(subj, func(*nats.Msg) {}); err != nil {
+				t.Fatal(err)
+			}
+			pnc.Flush()
+			pErrs.expect(t, "subscription", subj)
+		}
 		pErrs.none(t)
 	})
 
@@ -724,6 +732,12 @@ func TestPermissions(t *testing.T) {
 			t.Error("bot: looked up the snapshot bucket")
 		}
 		bErrs.expect(t, "publish", "$JS.API.STREAM.INFO.KV_"+jet.SnapshotBucket)
+		// Nor the workers' replies (their pull deliveries carry inputs).
+		if _, err := bnc.Subscribe("_INBOX_worker.>", func(*nats.Msg) {}); err != nil {
+			t.Fatal(err)
+		}
+		bnc.Flush()
+		bErrs.expect(t, "subscription", "_INBOX_worker.>")
 		c2, cancel2 := short()
 		defer cancel2()
 		if _, err := bundles.CreateConsumer(c2, jetstream.ConsumerConfig{}); err == nil {

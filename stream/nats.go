@@ -123,6 +123,12 @@ type ConnOptions struct {
 	// TLSCA, TLSCert and TLSKey are PEM files: the CA to trust, and a client
 	// certificate and key for mutual TLS.
 	TLSCA, TLSCert, TLSKey string
+	// InboxPrefix, if not empty, replaces _INBOX as the subject prefix of
+	// the connection's reply inboxes (request replies, JetStream API
+	// answers, pull deliveries, watches). Servers that give each user
+	// subscribe rights on its own prefix only (deploy/cluster/accounts.conf)
+	// keep users from reading each other's replies.
+	InboxPrefix string
 	// OnEvent, if set, is told about disconnects, reconnects and async errors.
 	OnEvent func(msg string, err error)
 }
@@ -144,6 +150,9 @@ func Connect(o ConnOptions) (*nats.Conn, error) {
 	}
 	if o.User != "" {
 		opts = append(opts, nats.UserInfo(o.User, o.Password))
+	}
+	if o.InboxPrefix != "" {
+		opts = append(opts, nats.CustomInboxPrefix(o.InboxPrefix))
 	}
 	if o.Token != "" {
 		opts = append(opts, nats.Token(o.Token))

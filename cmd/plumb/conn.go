@@ -29,6 +29,7 @@ func (c *connFlags) register(fs *flag.FlagSet, defURL, urlHelp string) {
 	fs.StringVar(&c.o.TLSCA, "tls-ca", "", "PEM `file` of the CA to trust for TLS")
 	fs.StringVar(&c.o.TLSCert, "tls-cert", "", "PEM client certificate `file` for mutual TLS")
 	fs.StringVar(&c.o.TLSKey, "tls-key", "", "PEM client key `file` for mutual TLS")
+	fs.StringVar(&c.o.InboxPrefix, "inbox-prefix", "", "subject `prefix` of this connection's reply inboxes instead of _INBOX; on servers that let each user read replies under its own prefix only (deploy/cluster/accounts.conf: _INBOX_<user>)")
 }
 
 func (c *connFlags) connect(name string, log *zap.Logger) (*nats.Conn, error) {
