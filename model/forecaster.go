@@ -55,3 +55,22 @@ type Forecaster interface {
 	// once per interval; xs and its elements are only valid during the call.
 	Learn(y float64, xs []*Features)
 }
+
+// RowPreparer is implemented by forecasters that can do, when a weather
+// run arrives, the work per weather row they would otherwise do at the
+// next refresh (a learner's answer for each row): a refresh after a meter
+// reading, the path the trading bots wait on, is then spared it.
+// PrepareRun gets, for each row of the newest run within the horizon,
+// features whose Weather, WeatherVars and Driver are set (xs is only valid
+// during the call), and must not change what Quantiles gives.
+type RowPreparer interface {
+	PrepareRun(xs []Features)
+}
+
+// PairQuantiler is implemented by forecasters that give the quantiles of
+// one interval at two lists of levels for about the cost of one call: the
+// raw levels and the calibrated ones of a refresh. QuantilesPair(a, la, b,
+// lb, x) writes what Quantiles(a, x, la) and Quantiles(b, x, lb) would.
+type PairQuantiler interface {
+	QuantilesPair(a []float64, la []float64, b []float64, lb []float64, x *Features)
+}

@@ -30,6 +30,9 @@ func constructors() []constructor {
 		{"stack", func(s Site, u Setup) Forecaster {
 			return NewStack(s, u, StackOptions{})
 		}},
+		{"stack-analog", func(s Site, u Setup) Forecaster {
+			return NewStack(s, u, StackOptions{Learner: LearnerAnalog})
+		}},
 	}
 }
 

@@ -10,7 +10,7 @@ import (
 
 func TestNames(t *testing.T) {
 	got := Names()
-	want := []string{"baseline", "climatology", "persistence", "stack"}
+	want := []string{"baseline", "climatology", "persistence", "stack", "stack-analog"}
 	if !slices.Equal(got, want) {
 		t.Fatalf("Names() = %v, want %v", got, want)
 	}

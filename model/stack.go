@@ -5,6 +5,7 @@ import (
 	"slices"
 	"time"
 
+	"github.com/plumb-forecast/plumb/model/analog"
 	"github.com/plumb-forecast/plumb/model/forest"
 	"github.com/plumb-forecast/plumb/model/qr"
 	"github.com/plumb-forecast/plumb/model/solar"
@@ -42,7 +43,19 @@ type StackOptions struct {
 	// CacheRows is how many weather rows' forest quantiles are kept; 0
 	// means 2048.
 	CacheRows int
+	// Learner chooses the first layer: LearnerForest (the default, "") or
+	// LearnerAnalog, the alternative it was raced against by backtest
+	// (see the README's model section).
+	Learner string
+	// Analog configures the analog ensemble of LearnerAnalog.
+	Analog analog.Options
 }
+
+// First layers of the Stack (StackOptions.Learner).
+const (
+	LearnerForest = ""
+	LearnerAnalog = "analog"
+)
 
 func (o StackOptions) withDefaults() StackOptions {
 	if o.Forest.Trees <= 0 {
@@ -112,7 +125,8 @@ type Stack struct {
 	lat, lon       float64
 	sinLat, cosLat float64
 	sun            [2]sunDay   // the two latest days potential computed for
-	potCache       [2]potMemo  // potentials: of the latest step, of its latest reading
+	potCache       [2]potMemo  // [1]: the potential of the latest reading
+	potTab         []potMemo   // potentials of steps, by minute (potentials)
 	curve          *wind.Curve // wind sites only
 	// fcurve is curve as it stood when the forest in use was put in use:
 	// the forest's features are read off it (wind sites with a forest).
@@ -139,14 +153,13 @@ type Stack struct {
 	// Rows added since the last fit started, and rows it was grown on.
 	added, lastN int
 
-	forest  *forest.Forest
-	inst    fitLaunch // the launch of forest (n 0 when there is none)
-	scratch forest.Scratch
-	fitCh   chan fitResult
-	flight  fitLaunch // the launch of the fit in flight, when fitCh is not nil
-	fitAge  int
-	fitErr  error
-	fits    int
+	forest rowLearner // the first layer in use (a forest, or analogs)
+	inst   fitLaunch  // the launch of forest (n 0 when there is none)
+	fitCh  chan fitResult
+	flight fitLaunch // the launch of the fit in flight, when fitCh is not nil
+	fitAge int
+	fitErr error
+	fits   int
 
 	cache map[*WeatherRow]int32
 	slab  []float64
@@ -157,14 +170,59 @@ type Stack struct {
 
 	gen  uint64
 	memo stackMemo
-	bq   []float64 // base grid quantiles, per unit
+	// pair: the last QuantilesPair answer, given again while the grid and
+	// the levels stay (steps that share a weather row).
+	pair     stackPair
+	plan     gridPlan   // of the last levels read that are not the setup's
+	prepared []Features // the rows of the newest run (PrepareRun)
+	// levels are the setup's levels, at grid[levelIdx[j]].
+	levels   []float64
+	levelIdx []int
+	bq       []float64 // base grid quantiles, per unit
 }
 
 const corrDim = 4
 
 type fitResult struct {
-	f   *forest.Forest
+	f   rowLearner
 	err error
+}
+
+// rowLearner is the Stack's first layer, fitted: it writes the quantiles
+// at levels of the outcome of a case with predictors x. It is used from
+// the Stack's goroutine only.
+type rowLearner interface {
+	quantiles(dst, x, levels []float64)
+}
+
+// forestLearner is a quantile regression forest with its scratch space.
+type forestLearner struct {
+	f  *forest.Forest
+	sc forest.Scratch
+}
+
+func (l *forestLearner) quantiles(dst, x, levels []float64) { l.f.Quantiles(dst, x, levels, &l.sc) }
+
+// analogLearner is an analog ensemble.
+type analogLearner struct{ a *analog.Analogs }
+
+func (l analogLearner) quantiles(dst, x, levels []float64) { l.a.Quantiles(dst, x, levels) }
+
+// grow fits the first layer chosen by o on n = len(y) rows of X (row-major,
+// p columns).
+func grow(X []float64, p int, y []float64, o StackOptions) (rowLearner, error) {
+	if o.Learner == LearnerAnalog {
+		a, err := analog.Fit(X, p, y, o.Analog)
+		if err != nil {
+			return nil, err
+		}
+		return analogLearner{a}, nil
+	}
+	f, err := forest.Fit(X, p, y, o.Forest)
+	if err != nil {
+		return nil, err
+	}
+	return &forestLearner{f: f}, nil
 }
 
 // fitLaunch records where the training ring stood when a fit started:
@@ -203,6 +261,7 @@ func (s *Stack) fitRows(l fitLaunch) (X, y []float64) {
 // twice per step (nominal and calibrated levels) with the same features.
 type stackMemo struct {
 	ok           bool
+	ver          uint64 // counts the grids computed
 	gen          uint64
 	start        time.Time
 	lead, bucket int
@@ -230,6 +289,11 @@ func NewStack(site Site, setup Setup, o StackOptions) *Stack {
 		cache:   make(map[*WeatherRow]int32),
 		bq:      make([]float64, len(grid)),
 		memo:    stackMemo{q: make([]float64, len(grid))},
+		levels:  setup.Levels,
+	}
+	for _, l := range setup.Levels {
+		k, _ := slices.BinarySearch(grid, l)
+		s.levelIdx = append(s.levelIdx, k)
 	}
 	if site.HasLocation() {
 		s.hasLoc, s.lat, s.lon = true, *site.Lat, *site.Lon
@@ -248,7 +312,12 @@ func NewStack(site Site, setup Setup, o StackOptions) *Stack {
 }
 
 // Name implements Forecaster.
-func (s *Stack) Name() string { return "stack" }
+func (s *Stack) Name() string {
+	if s.o.Learner == LearnerAnalog {
+		return "stack-analog"
+	}
+	return "stack"
+}
 
 // Fits returns how many forests have been put in use, and the error of the
 // latest fit that failed (nil if none failed).
@@ -372,7 +441,7 @@ func (s *Stack) forestGrid(x *Features) []float64 {
 	i := len(s.cache)
 	s.slab = slices.Grow(s.slab, g)[:(i+1)*g]
 	q := s.slab[i*g : (i+1)*g]
-	s.forest.Quantiles(q, s.fx, s.grid, &s.scratch)
+	s.forest.quantiles(q, s.fx, s.grid)
 	s.cache[x.Weather] = int32(i)
 	return q
 }
@@ -397,20 +466,27 @@ func (s *Stack) potentials(x *Features) (potNow, potLast float64) {
 	if s.kind != KindPV || !s.hasLoc {
 		return 0, 0
 	}
-	// Both are asked for twice per step (nominal and calibrated levels),
-	// and potLast is the same for every step of a refresh: the latest
-	// answers are kept.
+	// potLast is the same for every step of a refresh, and a refresh
+	// asks for the steps the previous one asked for, but one: the
+	// potentials of the steps are kept in a small table by minute (a
+	// horizon of up to potTable steps does not collide).
 	half := time.Duration(x.ValidMinutes) * time.Minute / 2
 	now := x.ValidStart.Add(half).Unix()
-	if c := &s.potCache[0]; !c.ok || c.at != now {
+	if s.potTab == nil {
+		s.potTab = make([]potMemo, potTable)
+	}
+	if c := &s.potTab[uint64(now/60)%potTable]; !c.ok || c.at != now {
 		*c = potMemo{ok: true, at: now, v: s.potential(time.Unix(now, 0))}
 	}
 	last := x.ValidStart.Add(-time.Duration(x.LeadMinutes)*time.Minute - half).Unix()
 	if c := &s.potCache[1]; !c.ok || c.at != last {
 		*c = potMemo{ok: true, at: last, v: s.potential(time.Unix(last, 0))}
 	}
-	return s.potCache[0].v, s.potCache[1].v
+	return s.potTab[uint64(now/60)%potTable].v, s.potCache[1].v
 }
+
+// potTable is the size of the table of step potentials.
+const potTable = 256
 
 // potMemo is a potential computed for a Unix time.
 type potMemo struct {
@@ -475,6 +551,7 @@ func (s *Stack) gridQuantiles(x *Features, u float64) []float64 {
 		SortNearly(m.q)
 	}
 	m.potNow, m.potLast = potNow, potLast
+	m.ver++
 	m.ok, m.gen, m.start, m.lead, m.bucket, m.row, m.night = true, s.gen, x.ValidStart, x.LeadMinutes, x.Bucket, x.Weather, x.Night
 	m.last, m.avail = math.Float64bits(x.LastPowerMW), math.Float64bits(u)
 	return m.q
@@ -520,28 +597,133 @@ func (s *Stack) Quantiles(dst []float64, x *Features, levels []float64) {
 		}
 		return
 	}
+	s.readGrid(dst, levels, s.gridQuantiles(x, u), u)
+}
+
+// PrepareRun implements RowPreparer: the forest's quantiles of the rows
+// are computed now and cached (they are a function of the row and the
+// forest), and again when a new forest is installed.
+func (s *Stack) PrepareRun(xs []Features) {
+	s.prepared = append(s.prepared[:0], xs...)
+	s.prepare()
+}
+
+// prepare fills the cache with the forest's quantiles of the rows of the
+// newest run.
+func (s *Stack) prepare() {
+	if s.forest == nil {
+		return
+	}
+	for i := range s.prepared {
+		if x := &s.prepared[i]; x.Weather != nil && len(x.WeatherVars) > 0 {
+			s.forestGrid(x)
+		}
+	}
+}
+
+// QuantilesPair implements PairQuantiler: the corrected grid is found once
+// and read at both lists of levels.
+func (s *Stack) QuantilesPair(a []float64, la []float64, b []float64, lb []float64, x *Features) {
+	if len(a) != len(la) || len(b) != len(lb) {
+		panic("model: Stack.QuantilesPair: len(dst) != len(levels)")
+	}
+	u := avail(x)
+	if !(u > 0) {
+		s.Quantiles(a, x, la)
+		s.Quantiles(b, x, lb)
+		return
+	}
 	q := s.gridQuantiles(x, u)
-	// interpGrid with the search resumed from the previous level: the
-	// levels asked for are sorted, or nearly (calibrated ones).
-	g, k, prev := s.grid, 0, math.Inf(-1)
-	for j, l := range levels {
-		if l <= g[0] || l >= g[len(g)-1] {
-			dst[j] = interpGrid(g, q, l) * u
-			continue
+	p := &s.pair
+	if p.ok && p.ver == s.memo.ver && p.u == math.Float64bits(u) && sameFloats(la, p.la) && sameFloats(lb, p.lb) {
+		copy(a, p.qa)
+		copy(b, p.qb)
+		return
+	}
+	s.readGrid(a, la, q, u)
+	s.readGrid(b, lb, q, u)
+	p.ok, p.ver, p.u = true, s.memo.ver, math.Float64bits(u)
+	p.la, p.lb = append(p.la[:0], la...), append(p.lb[:0], lb...)
+	p.qa, p.qb = append(p.qa[:0], a...), append(p.qb[:0], b...)
+}
+
+// sameFloats reports whether p and q hold the same floats, bit for bit.
+func sameFloats(p, q []float64) bool {
+	if len(p) != len(q) {
+		return false
+	}
+	for j, v := range p {
+		if math.Float64bits(v) != math.Float64bits(q[j]) {
+			return false
 		}
-		if l < prev {
-			k = 0
-		}
-		prev = l
-		for g[k] < l {
-			k++
-		}
-		if g[k] == l {
+	}
+	return true
+}
+
+// readGrid writes to dst the quantiles at levels read off the sorted grid
+// quantiles q (per unit), times u: interpGrid with the search resumed from
+// the previous level, since the levels asked for are sorted, or nearly
+// (calibrated ones).
+func (s *Stack) readGrid(dst, levels, q []float64, u float64) {
+	if sameFloats(levels, s.levels) {
+		// The setup's levels, all on the grid.
+		for j, k := range s.levelIdx {
 			dst[j] = q[k] * u
+		}
+		return
+	}
+	// Where each level falls on the grid depends on the levels alone: it
+	// is kept for the next call (the calibrated levels of one lead bucket
+	// serve every step of the bucket).
+	p := &s.plan
+	if !sameFloats(levels, p.levels) {
+		p.build(s.grid, levels)
+	}
+	g := s.grid
+	for j, l := range levels {
+		switch k := p.k[j]; {
+		case k < 0:
+			dst[j] = interpGrid(g, q, l) * u
+		case p.on[j]:
+			dst[j] = q[k] * u
+		default:
+			w := p.w[j]
+			dst[j] = (q[k-1] + w*(q[k]-q[k-1])) * u
+		}
+	}
+}
+
+// stackPair is the last QuantilesPair answer of a Stack.
+type stackPair struct {
+	ok             bool
+	ver, u         uint64
+	la, lb, qa, qb []float64
+}
+
+// gridPlan says where levels fall on a grid: level j lies on grid[k[j]]
+// (on[j]), or between grid[k[j]-1] and grid[k[j]] at weight w[j], or, k[j]
+// < 0, outside (grid[0], grid[len-1]).
+type gridPlan struct {
+	levels []float64
+	k      []int
+	w      []float64
+	on     []bool
+}
+
+func (p *gridPlan) build(g, levels []float64) {
+	p.levels = append(p.levels[:0], levels...)
+	p.k, p.w, p.on = p.k[:0], p.w[:0], p.on[:0]
+	for _, l := range levels {
+		if !(l > g[0] && l < g[len(g)-1]) {
+			p.k, p.w, p.on = append(p.k, -1), append(p.w, 0), append(p.on, false)
 			continue
 		}
-		w := (l - g[k-1]) / (g[k] - g[k-1])
-		dst[j] = (q[k-1] + w*(q[k]-q[k-1])) * u
+		k, found := slices.BinarySearch(g, l)
+		w := 0.0
+		if !found {
+			w = (l - g[k-1]) / (g[k] - g[k-1])
+		}
+		p.k, p.w, p.on = append(p.k, k), append(p.w, w), append(p.on, found)
 	}
 }
 
@@ -620,10 +802,10 @@ func (s *Stack) maybeRefit() {
 // records, age settlements into its wait for installation.
 func (s *Stack) launch(l fitLaunch, age int) {
 	X, y := s.fitRows(l)
-	p, o := s.p, s.o.Forest
+	p, o := s.p, s.o
 	ch := make(chan fitResult, 1) // the goroutine never blocks, even if the Stack is dropped
 	go func() {
-		f, err := forest.Fit(X, p, y, o)
+		f, err := grow(X, p, y, o)
 		ch <- fitResult{f, err}
 	}()
 	s.fitCh, s.flight, s.fitAge = ch, l, age
@@ -652,6 +834,7 @@ func (s *Stack) install() {
 	s.fits++
 	clear(s.cache)
 	s.slab = s.slab[:0]
+	s.prepare()
 }
 
 // cloneCurve returns a copy of c.

@@ -9,7 +9,6 @@ import (
 	"math"
 	"slices"
 
-	"github.com/plumb-forecast/plumb/model/forest"
 	"github.com/plumb-forecast/plumb/model/qr"
 	"github.com/plumb-forecast/plumb/model/wind"
 )
@@ -590,6 +589,10 @@ func (s *Stack) config() []byte {
 	w.bool(f.WithoutReplacement)
 	w.u64(f.Seed)
 	w.f64(s.o.RefitGrowth)
+	if s.o.Learner != LearnerForest {
+		w.str(s.o.Learner)
+		w.i64(int64(s.o.Analog.K))
+	}
 	return w.b
 }
 
@@ -822,7 +825,7 @@ func (s *Stack) UnmarshalBinary(data []byte) error {
 	next.forest, next.fitCh = nil, nil
 	if hasForest {
 		X, y := next.fitRows(next.inst)
-		f, err := forest.Fit(X, next.p, y, next.o.Forest)
+		f, err := grow(X, next.p, y, next.o)
 		if err != nil {
 			return fmt.Errorf("%w: stack: growing the forest in use again: %v", ErrState, err)
 		}
@@ -834,7 +837,7 @@ func (s *Stack) UnmarshalBinary(data []byte) error {
 	next.slab = nil
 	next.sun = [2]sunDay{}
 	next.memo = stackMemo{q: make([]float64, g)}
-	next.scratch = forest.Scratch{}
+	next.pair, next.plan, next.potTab, next.prepared = stackPair{}, gridPlan{}, nil, nil
 	*s = next
 	if inFlight {
 		s.launch(s.flight, s.fitAge)

@@ -13,6 +13,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/plumb-forecast/plumb/model/analog"
 	"github.com/plumb-forecast/plumb/model/forest"
 	"github.com/plumb-forecast/plumb/model/solar"
 )
@@ -350,6 +351,9 @@ func TestStateRefused(t *testing.T) {
 		"persistence": func(Site) Forecaster { return NewPersistence(PersistenceOptions{Window: 100}) },
 		"stack":       func(s Site) Forecaster { return NewStack(s, Setup{Levels: LevelGrid(10)}, StackOptions{}) },
 		"stack small": func(s Site) Forecaster { return NewStack(s, Setup{}, StackOptions{MinRows: 61}) },
+		"stack-analog": func(s Site) Forecaster {
+			return NewStack(s, Setup{}, StackOptions{Learner: LearnerAnalog, Analog: analog.Options{K: 30}})
+		},
 	}
 	cases := stateCases(t)
 	for _, c := range cases {

@@ -216,6 +216,9 @@ type Actor struct {
 
 	// The reorder window (Config.Reorder): inputs held, in order, and the
 	// latest event time held or seen.
+	prePub []float64        // scratch of RefreshInto
+	prepX  []model.Features // scratch of Weather
+
 	held     []heldInput
 	heldMax  time.Time
 	released []heldInput // scratch of hold
@@ -308,6 +311,7 @@ func (a *Actor) Weather(w *model.WeatherRun) error {
 	a.runs = append(a.runs, run{})
 	copy(a.runs[i+1:], a.runs[i:])
 	a.runs[i] = r
+	newest := i == len(a.runs)-1
 	if drop := len(a.runs) - a.cfg.KeepRuns; drop > 0 {
 		// Shift down rather than reslice, so the slice keeps its room and
 		// the next append does not allocate.
@@ -319,7 +323,34 @@ func (a *Actor) Weather(w *model.WeatherRun) error {
 		a.stepMinutes = w.Rows[0].ValidMinutes
 	}
 	a.advance(w.IssuedAt)
+	if p, ok := a.fc.(model.RowPreparer); ok && newest {
+		// The newest run: its rows within the horizon are the ones the
+		// next refreshes read.
+		end := a.horizonEnd(a.now)
+		a.prepX = a.prepX[:0]
+		for k := range w.Rows {
+			row := &w.Rows[k]
+			if !row.End().After(a.now) || !row.ValidStart.Before(end) {
+				continue
+			}
+			a.prepX = append(a.prepX, model.Features{Weather: row, WeatherVars: w.Vars, Driver: r.driverOf(row)})
+		}
+		p.PrepareRun(a.prepX)
+		clear(a.prepX) // no run kept alive from here
+	}
 	return nil
+}
+
+// driverOf returns the driving variable of one of r's rows: forecast
+// irradiance (PV) or wind speed, NaN if missing.
+func (r *run) driverOf(row *model.WeatherRow) float64 {
+	switch {
+	case r.driver >= 0 && !math.IsNaN(row.Values[r.driver]):
+		return row.Values[r.driver]
+	case r.u >= 0:
+		return math.Hypot(row.Values[r.u], row.Values[r.v])
+	}
+	return math.NaN()
 }
 
 // keptRun returns w as the actor keeps it, with the indices of the
@@ -741,12 +772,7 @@ func (a *Actor) features(x *model.Features, t time.Time, lead, bucket, step int)
 		}
 		x.RunAgeMinutes = cur.age
 		x.Weather, x.WeatherVars, a.xRun = row, r.Vars, r.WeatherRun
-		switch {
-		case r.driver >= 0 && !math.IsNaN(row.Values[r.driver]):
-			x.Driver = row.Values[r.driver]
-		case r.u >= 0:
-			x.Driver = math.Hypot(row.Values[r.u], row.Values[r.v])
-		}
+		x.Driver = r.driverOf(row)
 		break
 	}
 	if a.site.Kind == model.KindPV {
@@ -882,6 +908,8 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 	edges := a.cfg.Buckets.Edges
 	bucket := 0
 	lead0 := start.Sub(a.now)
+	pq, pair := a.fc.(model.PairQuantiler)
+	prePub := false // a.prePub holds the previous step's row before publishable
 	for i := 0; i < n; i++ {
 		d := time.Duration(i) * stepDur
 		t := start.Add(d)
@@ -896,12 +924,14 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		px, raw, pub := a.record(rec)
 		lx := a.latest(rec)
 		issued := int32(0)
+		stays := false
 		if !fresh {
 			issued = px.issued
 			if !a.replaces(t, bucket, issued) {
 				// The pending forecast of this (interval, bucket) stays.
 				px.issued++
 				px, raw, pub = &a.spareX, a.spareQ[:nl:nl], a.spareQ[nl:]
+				stays = true
 			}
 		}
 		x := &a.x
@@ -919,8 +949,16 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 			// forecaster.
 			clear(row)
 		} else {
-			a.fc.Quantiles(raw, x, a.cfg.Levels)
-			a.fc.Quantiles(row, x, levels)
+			if stays {
+				// The raw quantiles are kept for settlement only, and
+				// this forecast is not kept: only the published row.
+				a.fc.Quantiles(row, x, levels)
+			} else if pair {
+				pq.QuantilesPair(raw, a.cfg.Levels, row, levels, x)
+			} else {
+				a.fc.Quantiles(raw, x, a.cfg.Levels)
+				a.fc.Quantiles(row, x, levels)
+			}
 			// Adding a zero offset can only turn -0 into +0, which
 			// clipping does anyway.
 			if !zero {
@@ -928,8 +966,18 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 					row[j] += o
 				}
 			}
-			a.publishable(row, x)
+			// Steps that share a weather row often give the same row
+			// before publishable (which depends on the row and on the
+			// capacity, the same for the whole bundle): then they publish
+			// the previous step's row.
+			if prePub && sameBits(row, a.prePub) {
+				copy(row, b.Row(i-1))
+			} else {
+				a.prePub = append(a.prePub[:0], row...)
+				a.publishable(row, x)
+			}
 		}
+		prePub = !x.Night
 		copy(pub, row)
 		// Neighbouring steps often publish the same row (the weather runs
 		// are hourly, the steps shorter): then their sums are the same too.

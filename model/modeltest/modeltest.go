@@ -349,6 +349,16 @@ func replay(h *history, f1, f2 model.Forecaster) *result {
 					break
 				}
 			}
+			if pq, ok := f2.(model.PairQuantiler); ok && k%5 == 0 {
+				// Both lists of a pair call as two calls give them.
+				ra, rb := make([]float64, len(levels)), make([]float64, len(permLevels))
+				pq.QuantilesPair(ra, levels, rb, permLevels, x)
+				pb := call(f2, x, permLevels, bufP)
+				if !slices.EqualFunc(ra, d2, sameFloat) || !slices.EqualFunc(rb, pb, sameFloat) {
+					r.determinism.addf("%s: QuantilesPair differs from two Quantiles calls: valid %s lead %d min",
+						h.site.ID, x.ValidStart.Format(time.RFC3339), x.LeadMinutes)
+				}
+			}
 			if k%7 == 0 {
 				dp := call(f1, x, permLevels, bufP)
 				for j, p := range perm {
@@ -510,3 +520,5 @@ func (r *result) report(t *testing.T) {
 		}
 	})
 }
+
+func sameFloat(a, b float64) bool { return math.Float64bits(a) == math.Float64bits(b) }
