@@ -936,7 +936,9 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		}
 		x := &a.x
 		a.features(x, t, lead, bucket, step)
-		keep(px, x, a.xRun)
+		if !stays {
+			keep(px, x, a.xRun)
+		}
 		px.issued = issued + 1
 		keep(lx, x, a.xRun)
 		row := b.Row(i)
@@ -978,7 +980,9 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 			}
 		}
 		prePub = !x.Night
-		copy(pub, row)
+		if !stays {
+			copy(pub, row)
+		}
 		// Neighbouring steps often publish the same row (the weather runs
 		// are hourly, the steps shorter): then their sums are the same too.
 		if i > 0 && sameBits(row, b.Row(i-1)) {
