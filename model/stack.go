@@ -178,7 +178,14 @@ type Stack struct {
 	// levels are the setup's levels, at grid[levelIdx[j]].
 	levels   []float64
 	levelIdx []int
-	bq       []float64 // base grid quantiles, per unit
+	// A PV plane of known tilt (and azimuth, NaN if unknown), and the
+	// positions in cols of the temperature and 10 m wind columns (-1 if
+	// absent).
+	tilted                                             bool
+	tilt, az                                           float64
+	tempCol, u10Col, v10Col, u100Col, v100Col, presCol int
+	hub                                                float64   // a wind site's hub height (m), 0 if unknown
+	bq                                                 []float64 // base grid quantiles, per unit
 }
 
 const corrDim = 4
@@ -298,8 +305,19 @@ func NewStack(site Site, setup Setup, o StackOptions) *Stack {
 	if site.HasLocation() {
 		s.hasLoc, s.lat, s.lon = true, *site.Lat, *site.Lon
 		s.sinLat, s.cosLat = math.Sin(s.lat*math.Pi/180), math.Cos(s.lat*math.Pi/180)
+		if site.Kind == KindPV && site.TiltDeg != nil && *site.TiltDeg > 0 && *site.TiltDeg <= 180 {
+			// A known plane: the physical layer works on the plane of
+			// array (an unknown azimuth faces the equator).
+			s.tilted, s.tilt, s.az = true, *site.TiltDeg, math.NaN()
+			if site.AzimuthDeg != nil {
+				s.az = *site.AzimuthDeg
+			}
+		}
 	}
 	if site.Kind == KindWind {
+		if site.HubHeightM != nil && *site.HubHeightM > 0 {
+			s.hub = *site.HubHeightM
+		}
 		s.curve = wind.NewCurve(wind.CurveOptions{})
 	}
 	s.corr = make([]*qr.Online, setup.Buckets.Len()*len(grid))
@@ -333,15 +351,22 @@ func (s *Stack) mapCols(vars []string) {
 		return
 	}
 	if s.cols == nil {
-		s.cols = slices.Clone(vars)
-		s.p = len(s.cols) + s.extraFeatures()
-		s.fx = make([]float64, s.p)
+		s.setCols(slices.Clone(vars))
 	}
 	s.colMap = s.colMap[:0]
 	for _, c := range s.cols {
 		s.colMap = append(s.colMap, slices.Index(vars, c))
 	}
 	s.colKey = &vars[0]
+}
+
+// setCols fixes the weather columns the forest reads (the first run's).
+func (s *Stack) setCols(cols []string) {
+	s.cols = cols
+	s.p = len(s.cols) + s.extraFeatures()
+	s.fx = make([]float64, s.p)
+	s.tempCol, s.u10Col, s.v10Col = slices.Index(s.cols, "temp_c"), slices.Index(s.cols, "u10_ms"), slices.Index(s.cols, "v10_ms")
+	s.u100Col, s.v100Col, s.presCol = slices.Index(s.cols, "u100_ms"), slices.Index(s.cols, "v100_ms"), slices.Index(s.cols, "pressure_hpa")
 }
 
 // extraFeatures counts the forest features beyond the weather columns:
@@ -351,6 +376,8 @@ func (s *Stack) mapCols(vars []string) {
 func (s *Stack) extraFeatures() int {
 	n := 4
 	switch {
+	case s.kind == KindPV && s.hasLoc && s.tilted:
+		n += 2
 	case s.kind == KindPV && s.hasLoc:
 		n++
 	case s.kind == KindWind:
@@ -381,9 +408,15 @@ func (s *Stack) features(row *WeatherRow, vars []string, driver float64, curve *
 	switch {
 	case s.kind == KindPV && s.hasLoc:
 		fx[k] = s.potential(mid)
+		if s.tilted {
+			// The forecast irradiance on the plane, derated for the
+			// forecast temperature and wind where the run has them.
+			fx[k+1] = solar.PVPotential(mid, s.lat, s.lon, driver, s.rowValue(row, s.tempCol), s.rowWind(row), s.tilt, s.az)
+		}
 	case s.kind == KindWind:
-		fx[k] = driver
-		fx[k+1] = curve.Eval(driver)
+		v := s.windSpeed(row, vars, driver)
+		fx[k] = v
+		fx[k+1] = curve.Eval(v)
 	}
 }
 
@@ -415,7 +448,53 @@ func (s *Stack) potential(t time.Time) float64 {
 	if cz <= 0 {
 		return 0
 	}
-	return 1.098 * cz * math.Exp(-0.059/cz) // Haurwitz, per 1000 W/m2
+	clear := 1.098 * cz * math.Exp(-0.059/cz) // Haurwitz, per 1000 W/m2
+	if s.tilted {
+		// On the plane: Erbs, incidence and plane-of-array irradiance of
+		// the clear sky (no temperature derate: the potential of the sky).
+		return solar.PVPotential(t, s.lat, s.lon, 1000*clear, math.NaN(), math.NaN(), s.tilt, s.az)
+	}
+	return clear
+}
+
+// rowValue returns row's value of the column at index c of s.cols (its
+// position in the row found by mapCols), NaN if c < 0 or it is missing.
+func (s *Stack) rowValue(row *WeatherRow, c int) float64 {
+	if c < 0 || c >= len(s.colMap) {
+		return math.NaN()
+	}
+	if j := s.colMap[c]; j >= 0 && j < len(row.Values) {
+		return row.Values[j]
+	}
+	return math.NaN()
+}
+
+// windSpeed returns the wind speed the wind layer works with for a row
+// whose driver (Features.Driver) is given: carried to the hub height by the
+// power law when the site gives one and the row has speeds at 10 m and
+// 100 m (the exponent measured between them), then normalised to the
+// reference air density when the row has temperature and pressure
+// (METHODS.md section 2). Without those it is the driver.
+func (s *Stack) windSpeed(row *WeatherRow, vars []string, driver float64) float64 {
+	if row == nil || len(vars) == 0 || math.IsNaN(driver) {
+		return driver
+	}
+	s.mapCols(vars)
+	v := driver
+	if s.hub > 0 {
+		v10 := math.Hypot(s.rowValue(row, s.u10Col), s.rowValue(row, s.v10Col))
+		v100 := math.Hypot(s.rowValue(row, s.u100Col), s.rowValue(row, s.v100Col))
+		if a := wind.ShearExponent(v10, 10, v100, 100); !math.IsNaN(a) {
+			v = wind.HubSpeed(v100, 100, s.hub, a)
+		}
+	}
+	return wind.NormalizeSpeed(v, wind.AirDensity(s.rowValue(row, s.presCol), s.rowValue(row, s.tempCol)))
+}
+
+// rowWind returns the row's 10 m wind speed (from u10_ms and v10_ms), NaN
+// if it has none.
+func (s *Stack) rowWind(row *WeatherRow) float64 {
+	return math.Hypot(s.rowValue(row, s.u10Col), s.rowValue(row, s.v10Col))
 }
 
 // sunDay is the sun's declination and equation of time (minutes) of one
@@ -739,8 +818,10 @@ func (s *Stack) Learn(y float64, xs []*Features) {
 	if !(u0 > 0) {
 		return
 	}
-	if s.curve != nil && !math.IsNaN(xs[0].Driver) {
-		s.curve.Add(xs[0].Driver, y/u0)
+	if s.curve != nil {
+		if v := s.windSpeed(xs[0].Weather, xs[0].WeatherVars, xs[0].Driver); !math.IsNaN(v) {
+			s.curve.Add(v, y/u0)
+		}
 	}
 	g := len(s.grid)
 	for _, x := range xs {

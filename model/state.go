@@ -593,6 +593,11 @@ func (s *Stack) config() []byte {
 		w.str(s.o.Learner)
 		w.i64(int64(s.o.Analog.K))
 	}
+	if s.tilted {
+		w.str("plane")
+		w.f64(s.tilt)
+		w.f64(s.az)
+	}
 	return w.b
 }
 
@@ -742,8 +747,7 @@ func (s *Stack) UnmarshalBinary(data []byte) error {
 	}
 	next.p, next.fx = 0, nil
 	if len(next.cols) > 0 {
-		next.p = len(next.cols) + next.extraFeatures()
-		next.fx = make([]float64, next.p)
+		next.setCols(next.cols)
 	}
 	next.colKey, next.colMap = nil, nil
 	total := r.nonNeg("rows added", maxStateRows)

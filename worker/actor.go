@@ -676,31 +676,22 @@ func (a *Actor) publishable(q []float64, x *model.Features) {
 		}
 		return
 	}
-	// slices.Sort leaves a sorted slice as it is (no swap), so skipping it
-	// then changes nothing. Without NaN, sorted is q[j-1] <= q[j] for all
-	// j, the quick test; a NaN fails it and slices.IsSorted decides.
-	sorted := true
+	// Clip each v to max(0, min(hi, v)) (the built-ins treat NaN and
+	// signed zeros as math.Max and math.Min do), then sort: clipping is
+	// monotone, so this gives what sorting then clipping gives, bit for bit
+	// (no -0 survives either way), and the values clipped to 0 or to hi no
+	// longer cross, which leaves the sort little to do.
+	hi := x.CapacityMW * x.Availability
+	for j, v := range q {
+		q[j] = max(0, min(hi, v))
+	}
+	// Without NaN, sorted is q[j-1] <= q[j] for all j, the quick test; a
+	// NaN fails it and SortNearly sorts (NaNs first, as slices.Sort).
 	for j := 1; j < len(q); j++ {
 		if !(q[j-1] <= q[j]) {
-			sorted = false
-			break
+			model.SortNearly(q)
+			return
 		}
-	}
-	if !sorted && !slices.IsSorted(q) {
-		model.SortNearly(q) // clipping below erases the sign of a zero
-	}
-	// Clip each v to max(0, min(hi, v)) (the built-ins treat NaN and signed
-	// zeros as math.Max and math.Min do). Sorted, NaNs first, q holds from
-	// the left the values that are not above 0, then values in (0, hi],
-	// which clipping leaves as they are, then the values that are not at or
-	// below hi: only the two ends need the work (clipping twice is clipping
-	// once).
-	hi := x.CapacityMW * x.Availability
-	for j := 0; j < len(q) && !(q[j] > 0); j++ {
-		q[j] = max(0, min(hi, q[j]))
-	}
-	for j := len(q) - 1; j >= 0 && !(q[j] <= hi); j-- {
-		q[j] = max(0, min(hi, q[j]))
 	}
 }
 
