@@ -56,17 +56,6 @@ type Forecaster interface {
 	Learn(y float64, xs []*Features)
 }
 
-// RowPreparer is implemented by forecasters that can do, when a weather
-// run arrives, the work per weather row they would otherwise do at the
-// next refresh (a learner's answer for each row): a refresh after a meter
-// reading, the path the trading bots wait on, is then spared it.
-// PrepareRun gets, for each row of the newest run within the horizon,
-// features whose Weather, WeatherVars and Driver are set (xs is only valid
-// during the call), and must not change what Quantiles gives.
-type RowPreparer interface {
-	PrepareRun(xs []Features)
-}
-
 // PairQuantiler is implemented by forecasters that give the quantiles of
 // one interval at two lists of levels for about the cost of one call: the
 // raw levels and the calibrated ones of a refresh. QuantilesPair(a, la, b,

@@ -172,9 +172,8 @@ type Stack struct {
 	memo stackMemo
 	// pair: the last QuantilesPair answer, given again while the grid and
 	// the levels stay (steps that share a weather row).
-	pair     stackPair
-	plan     gridPlan   // of the last levels read that are not the setup's
-	prepared []Features // the rows of the newest run (PrepareRun)
+	pair stackPair
+	plan gridPlan // of the last levels read that are not the setup's
 	// levels are the setup's levels, at grid[levelIdx[j]].
 	levels   []float64
 	levelIdx []int
@@ -679,27 +678,6 @@ func (s *Stack) Quantiles(dst []float64, x *Features, levels []float64) {
 	s.readGrid(dst, levels, s.gridQuantiles(x, u), u)
 }
 
-// PrepareRun implements RowPreparer: the forest's quantiles of the rows
-// are computed now and cached (they are a function of the row and the
-// forest), and again when a new forest is installed.
-func (s *Stack) PrepareRun(xs []Features) {
-	s.prepared = append(s.prepared[:0], xs...)
-	s.prepare()
-}
-
-// prepare fills the cache with the forest's quantiles of the rows of the
-// newest run.
-func (s *Stack) prepare() {
-	if s.forest == nil {
-		return
-	}
-	for i := range s.prepared {
-		if x := &s.prepared[i]; x.Weather != nil && len(x.WeatherVars) > 0 {
-			s.forestGrid(x)
-		}
-	}
-}
-
 // QuantilesPair implements PairQuantiler: the corrected grid is found once
 // and read at both lists of levels.
 func (s *Stack) QuantilesPair(a []float64, la []float64, b []float64, lb []float64, x *Features) {
@@ -915,7 +893,6 @@ func (s *Stack) install() {
 	s.fits++
 	clear(s.cache)
 	s.slab = s.slab[:0]
-	s.prepare()
 }
 
 // cloneCurve returns a copy of c.

@@ -841,7 +841,7 @@ func (s *Stack) UnmarshalBinary(data []byte) error {
 	next.slab = nil
 	next.sun = [2]sunDay{}
 	next.memo = stackMemo{q: make([]float64, g)}
-	next.pair, next.plan, next.potTab, next.prepared = stackPair{}, gridPlan{}, nil, nil
+	next.pair, next.plan, next.potTab = stackPair{}, gridPlan{}, nil
 	*s = next
 	if inFlight {
 		s.launch(s.flight, s.fitAge)

@@ -311,7 +311,6 @@ func (a *Actor) Weather(w *model.WeatherRun) error {
 	a.runs = append(a.runs, run{})
 	copy(a.runs[i+1:], a.runs[i:])
 	a.runs[i] = r
-	newest := i == len(a.runs)-1
 	if drop := len(a.runs) - a.cfg.KeepRuns; drop > 0 {
 		// Shift down rather than reslice, so the slice keeps its room and
 		// the next append does not allocate.
@@ -323,21 +322,6 @@ func (a *Actor) Weather(w *model.WeatherRun) error {
 		a.stepMinutes = w.Rows[0].ValidMinutes
 	}
 	a.advance(w.IssuedAt)
-	if p, ok := a.fc.(model.RowPreparer); ok && newest {
-		// The newest run: its rows within the horizon are the ones the
-		// next refreshes read.
-		end := a.horizonEnd(a.now)
-		a.prepX = a.prepX[:0]
-		for k := range w.Rows {
-			row := &w.Rows[k]
-			if !row.End().After(a.now) || !row.ValidStart.Before(end) {
-				continue
-			}
-			a.prepX = append(a.prepX, model.Features{Weather: row, WeatherVars: w.Vars, Driver: r.driverOf(row)})
-		}
-		p.PrepareRun(a.prepX)
-		clear(a.prepX) // no run kept alive from here
-	}
 	return nil
 }
 

@@ -12,7 +12,6 @@ import (
 	"math"
 	"runtime"
 	"runtime/debug"
-	"slices"
 	"testing"
 	"time"
 
@@ -494,37 +493,6 @@ func BenchmarkRefreshEncodeStack(b *testing.B) {
 				if err := enc.Encode(&buf, a.Refresh()); err != nil {
 					b.Fatal(err)
 				}
-			}
-		})
-	}
-}
-
-// BenchmarkPrepareRunStack measures what a weather run's arrival adds
-// for the stack: the forest's quantiles of the rows of the run within the
-// horizon (model.RowPreparer), which the refreshes after it then read from
-// the cache. One op is one run of 48 hourly rows.
-func BenchmarkPrepareRunStack(b *testing.B) {
-	for _, site := range testSites() {
-		b.Run(site.ID, func(b *testing.B) {
-			a, g := warmActorWith(b, site, 144, 19, "stack")
-			st := a.fc.(*model.Stack)
-			if n, err := st.Fits(); n == 0 {
-				b.Fatalf("no forest grown while warming (error %v)", err)
-			}
-			run := g.runs[(g.nrun+len(g.runs)-1)%len(g.runs)]
-			kept := a.keptRun(run)
-			xs := make([]model.Features, len(run.Rows))
-			rows := make([]model.WeatherRow, len(run.Rows))
-			b.ReportAllocs()
-			for b.Loop() {
-				b.StopTimer()
-				// Rows at new addresses: the cache is by row.
-				rows = slices.Clone(run.Rows)
-				for k := range rows {
-					xs[k] = model.Features{Weather: &rows[k], WeatherVars: run.Vars, Driver: kept.driverOf(&rows[k])}
-				}
-				b.StartTimer()
-				st.PrepareRun(xs)
 			}
 		})
 	}
