@@ -97,3 +97,17 @@ func SortNearly(q []float64) {
 		q[j] = v
 	}
 }
+
+// SameBits reports whether p and q hold the same floats, bit for bit (NaN
+// payloads and signed zeros included): what memos of quantile rows compare.
+func SameBits(p, q []float64) bool {
+	if len(p) != len(q) {
+		return false
+	}
+	for j, v := range p {
+		if math.Float64bits(v) != math.Float64bits(q[j]) {
+			return false
+		}
+	}
+	return true
+}

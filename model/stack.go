@@ -692,7 +692,7 @@ func (s *Stack) QuantilesPair(a []float64, la []float64, b []float64, lb []float
 	}
 	q := s.gridQuantiles(x, u)
 	p := &s.pair
-	if p.ok && p.ver == s.memo.ver && p.u == math.Float64bits(u) && sameFloats(la, p.la) && sameFloats(lb, p.lb) {
+	if p.ok && p.ver == s.memo.ver && p.u == math.Float64bits(u) && SameBits(la, p.la) && SameBits(lb, p.lb) {
 		copy(a, p.qa)
 		copy(b, p.qb)
 		return
@@ -704,25 +704,12 @@ func (s *Stack) QuantilesPair(a []float64, la []float64, b []float64, lb []float
 	p.qa, p.qb = append(p.qa[:0], a...), append(p.qb[:0], b...)
 }
 
-// sameFloats reports whether p and q hold the same floats, bit for bit.
-func sameFloats(p, q []float64) bool {
-	if len(p) != len(q) {
-		return false
-	}
-	for j, v := range p {
-		if math.Float64bits(v) != math.Float64bits(q[j]) {
-			return false
-		}
-	}
-	return true
-}
-
 // readGrid writes to dst the quantiles at levels read off the sorted grid
 // quantiles q (per unit), times u: interpGrid with the search resumed from
 // the previous level, since the levels asked for are sorted, or nearly
 // (calibrated ones).
 func (s *Stack) readGrid(dst, levels, q []float64, u float64) {
-	if sameFloats(levels, s.levels) {
+	if SameBits(levels, s.levels) {
 		// The setup's levels, all on the grid.
 		for j, k := range s.levelIdx {
 			dst[j] = q[k] * u
@@ -733,7 +720,7 @@ func (s *Stack) readGrid(dst, levels, q []float64, u float64) {
 	// is kept for the next call (the calibrated levels of one lead bucket
 	// serve every step of the bucket).
 	p := &s.plan
-	if !sameFloats(levels, p.levels) {
+	if !SameBits(levels, p.levels) {
 		p.build(s.grid, levels)
 	}
 	g := s.grid

@@ -947,7 +947,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 			// before publishable (which depends on the row and on the
 			// capacity, the same for the whole bundle): then they publish
 			// the previous step's row.
-			if prePub && sameBits(row, a.prePub) {
+			if prePub && model.SameBits(row, a.prePub) {
 				copy(row, b.Row(i-1))
 			} else {
 				a.prePub = append(a.prePub[:0], row...)
@@ -960,7 +960,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		}
 		// Neighbouring steps often publish the same row (the weather runs
 		// are hourly, the steps shorter): then their sums are the same too.
-		if i > 0 && sameBits(row, b.Row(i-1)) {
+		if i > 0 && model.SameBits(row, b.Row(i-1)) {
 			b.Expected[i] = b.Expected[i-1]
 			continue
 		}
@@ -971,19 +971,6 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		b.Expected[i] = sum / float64(nl)
 	}
 	return b
-}
-
-// sameBits reports whether p and q hold the same floats, bit for bit.
-func sameBits(p, q []float64) bool {
-	if len(p) != len(q) {
-		return false
-	}
-	for j, v := range p {
-		if math.Float64bits(v) != math.Float64bits(q[j]) {
-			return false
-		}
-	}
-	return true
 }
 
 // adjustments returns the levels to ask the forecaster for, and the offsets

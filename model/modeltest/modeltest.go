@@ -354,7 +354,7 @@ func replay(h *history, f1, f2 model.Forecaster) *result {
 				ra, rb := make([]float64, len(levels)), make([]float64, len(permLevels))
 				pq.QuantilesPair(ra, levels, rb, permLevels, x)
 				pb := call(f2, x, permLevels, bufP)
-				if !slices.EqualFunc(ra, d2, sameFloat) || !slices.EqualFunc(rb, pb, sameFloat) {
+				if !model.SameBits(ra, d2) || !model.SameBits(rb, pb) {
 					r.determinism.addf("%s: QuantilesPair differs from two Quantiles calls: valid %s lead %d min",
 						h.site.ID, x.ValidStart.Format(time.RFC3339), x.LeadMinutes)
 				}
@@ -520,5 +520,3 @@ func (r *result) report(t *testing.T) {
 		}
 	})
 }
-
-func sameFloat(a, b float64) bool { return math.Float64bits(a) == math.Float64bits(b) }
