@@ -5,7 +5,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/plumb-forecast/plumb/model/score"
 	"github.com/plumb-forecast/plumb/model/wind"
 )
 
@@ -92,36 +91,11 @@ func TestStackHubAndDensity(t *testing.T) {
 		}
 		return runs
 	}
-	levels := LevelGrid(10)
-	loss := func(site Site, runs []*WeatherRun) float64 {
-		f := NewStack(site, Setup{Levels: levels}, StackOptions{MinRows: 24 * 10, InstallAfter: 1})
-		pending := map[int]*Features{}
-		q := make([]float64, len(levels))
-		sum, n := 0.0, 0
-		for h := 0; h < 24*days; h++ {
-			if x := pending[h]; x != nil {
-				y := power(h)
-				if h >= 24*(days-scored) {
-					f.Quantiles(q, x, levels)
-					sum += score.MeanPinball(q, levels, y)
-					n++
-				}
-				f.Learn(y, []*Features{x})
-				delete(pending, h)
-			}
-			target := h + lead
-			run := runs[(h+1)/24]
-			row := &run.Rows[target-24*((h+1)/24)]
-			vs := start.Add(time.Duration(target) * time.Hour)
-			pending[target] = &Features{
-				ValidStart: vs, ValidMinutes: 60, LeadMinutes: 60 * lead, Bucket: DefaultBuckets().Of(60 * lead),
-				CapacityMW: site.CapacityMW, Availability: 1, Driver: row.Values[len(row.Values)-1],
-				LastPowerMW: power(h), HourUTC: float64(vs.Hour()) + 0.5, Weather: row, WeatherVars: run.Vars,
-			}
-		}
-		return sum / float64(n)
+	replay := func(runs []*WeatherRun) hourlyReplay {
+		return hourlyReplay{start: start, days: days, scored: scored, lead: lead, runs: runs, power: power,
+			driver: func(row *WeatherRow) float64 { return row.Values[len(row.Values)-1] }}
 	}
-	told, untold := loss(site, mkRuns(true)), loss(bare, mkRuns(false))
+	told, untold := replay(mkRuns(true)).loss(t, site), replay(mkRuns(false)).loss(t, bare)
 	t.Logf("mean pinball per MW: hub height, temperature and pressure known %.4f; 10 m speed only %.4f", told/site.CapacityMW, untold/site.CapacityMW)
 	if !(told < untold) {
 		t.Errorf("the hub height and the air do not help: %.4f against %.4f", told, untold)

@@ -5,7 +5,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/plumb-forecast/plumb/model/score"
 	"github.com/plumb-forecast/plumb/model/solar"
 )
 
@@ -52,47 +51,10 @@ func TestStackPlaneOfArray(t *testing.T) {
 		p := plane.CapacityMW * solar.PVPotential(mid, lat, lon, ghi(h), temp(h), math.NaN(), tilt, az) * (1 + 0.03*stateNoise(uint64(h), 9))
 		return math.Max(0, math.Min(plane.CapacityMW, p))
 	}
-	levels := LevelGrid(10)
-	loss := func(site Site) float64 {
-		f := NewStack(site, Setup{Levels: levels}, StackOptions{MinRows: 24 * 10, InstallAfter: 1})
-		pending := map[int]*Features{}
-		q := make([]float64, len(levels))
-		sum, n := 0.0, 0
-		for h := 0; h < 24*days; h++ {
-			// The hour h settles: the forecast of it, made lead hours
-			// before, is learned from.
-			if x := pending[h]; x != nil {
-				y := power(h)
-				if h >= 24*(days-scored) && !x.Night {
-					f.Quantiles(q, x, levels)
-					sum += score.MeanPinball(q, levels, y)
-					n++
-				}
-				f.Learn(y, []*Features{x})
-				delete(pending, h)
-			}
-			// At the end of hour h, forecast hour h+lead.
-			target := h + lead
-			run := runs[target/24]
-			if target/24 > (h+1)/24 {
-				run = runs[(h+1)/24] // only the run issued by now
-			}
-			row := &run.Rows[target-24*((h+1)/24)]
-			vs := start.Add(time.Duration(target) * time.Hour)
-			z, _ := solar.Position(vs.Add(30*time.Minute), lat, lon)
-			pending[target] = &Features{
-				ValidStart: vs, ValidMinutes: 60, LeadMinutes: 60 * lead, Bucket: DefaultBuckets().Of(60 * lead),
-				CapacityMW: site.CapacityMW, Availability: 1, Driver: row.Values[0], RunAgeMinutes: 0,
-				LastPowerMW: power(h), HourUTC: float64(vs.Hour()) + 0.5, Night: z >= 90,
-				Weather: row, WeatherVars: run.Vars,
-			}
-		}
-		if fits, err := f.Fits(); fits == 0 {
-			t.Fatalf("%s: no forest grown (%v)", site.ID, err)
-		}
-		return sum / float64(n)
-	}
-	withPlane, withoutPlane := loss(plane), loss(flat)
+	r := hourlyReplay{start: start, days: days, scored: scored, lead: lead, runs: runs, power: power,
+		driver: func(row *WeatherRow) float64 { return row.Values[0] },
+		night:  func(mid time.Time) bool { z, _ := solar.Position(mid, lat, lon); return z >= 90 }}
+	withPlane, withoutPlane := r.loss(t, plane), r.loss(t, flat)
 	t.Logf("mean pinball per MW of capacity: told the plane %.4f, told the location only %.4f", withPlane/plane.CapacityMW, withoutPlane/plane.CapacityMW)
 	if !(withPlane < 0.9*withoutPlane) {
 		t.Errorf("knowing the plane does not help: %.4f against %.4f without", withPlane, withoutPlane)
