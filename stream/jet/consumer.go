@@ -50,9 +50,11 @@ type ConsumerOptions struct {
 // DefaultInactiveAfter is the default ConsumerOptions.InactiveAfter.
 const DefaultInactiveAfter = 5 * time.Minute
 
-// ConsumerName returns the name of the durable consumer of partition p:
-// plumb-in-<p>. The consumer outlives its worker, so whoever leases the
-// partition next resumes from its acknowledgements.
+// ConsumerName returns the name of the shared durable consumer of
+// partition p: plumb-in-<p>. It outlives its reader, so the next one
+// resumes from its acknowledgements. Durable workers do not share it: each
+// read uses a consumer named for its reader (ConsumerOptions.Owner) and
+// starts from the sequence its snapshots cover.
 func ConsumerName(p int) string { return "plumb-in-" + strconv.Itoa(p) }
 
 // PartitionConsumer creates, or updates, the durable pull consumer of
