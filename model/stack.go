@@ -167,12 +167,19 @@ type Stack struct {
 
 	corr []*qr.Online // [bucket*len(grid)+k]
 	z    [corrDim]float64
+	// cw holds the prediction weights of corr, corrDim per learner in
+	// corr's order; a bucket's are valid when cwGen[bucket] == gen+1
+	// (the weights change only in Learn).
+	cw    []float64
+	cwGen []uint64
 
 	gen  uint64
 	memo stackMemo
 	// pair: the last QuantilesPair answer, given again while the grid and
-	// the levels stay (steps that share a weather row).
+	// the levels stay (steps that share a weather row); one: the same for
+	// Quantiles.
 	pair stackPair
+	one  stackOne
 	plan gridPlan // of the last levels read that are not the setup's
 	// levels are the setup's levels, at grid[levelIdx[j]].
 	levels   []float64
@@ -620,10 +627,17 @@ func (s *Stack) gridQuantiles(x *Features, u float64) []float64 {
 	bm := interpGrid(s.grid, s.bq, 0.5)
 	s.corrFeatures(x, u, bm, potNow, potLast)
 	b := min(max(x.Bucket, 0), s.buckets.Len()-1)
-	g := len(s.grid)
+	w := s.corrWeights(b)
+	z := &s.z
 	for k := range s.grid {
-		s.z[2] = s.bq[k] - bm
-		m.q[k] = s.bq[k] + s.corr[b*g+k].Predict(s.z[:])
+		z[2] = s.bq[k] - bm
+		// qr.Online.Predict, with the same additions in the same order.
+		c := (*[corrDim]float64)(w[k*corrDim:])
+		p := 0.0
+		for i := range corrDim {
+			p += c[i] * z[i]
+		}
+		m.q[k] = s.bq[k] + p
 	}
 	if !sortedFloats(m.q) {
 		SortNearly(m.q)
@@ -633,6 +647,24 @@ func (s *Stack) gridQuantiles(x *Features, u float64) []float64 {
 	m.ok, m.gen, m.start, m.lead, m.bucket, m.row, m.night = true, s.gen, x.ValidStart, x.LeadMinutes, x.Bucket, x.Weather, x.Night
 	m.last, m.avail = math.Float64bits(x.LastPowerMW), math.Float64bits(u)
 	return m.q
+}
+
+// corrWeights returns the prediction weights of bucket b's correction
+// learners, corrDim for each grid level in turn.
+func (s *Stack) corrWeights(b int) []float64 {
+	g := len(s.grid)
+	if s.cw == nil {
+		s.cw = make([]float64, len(s.corr)*corrDim)
+		s.cwGen = make([]uint64, s.buckets.Len())
+	}
+	w := s.cw[b*g*corrDim : (b+1)*g*corrDim]
+	if s.cwGen[b] != s.gen+1 {
+		for k := range g {
+			s.corr[b*g+k].Weights(w[k*corrDim : (k+1)*corrDim])
+		}
+		s.cwGen[b] = s.gen + 1
+	}
+	return w
 }
 
 // interpGrid reads the quantile at level l off sorted grid quantiles q,
@@ -675,7 +707,15 @@ func (s *Stack) Quantiles(dst []float64, x *Features, levels []float64) {
 		}
 		return
 	}
-	s.readGrid(dst, levels, s.gridQuantiles(x, u), u)
+	q := s.gridQuantiles(x, u)
+	o := &s.one
+	if o.ok && o.ver == s.memo.ver && o.u == math.Float64bits(u) && SameBits(levels, o.l) {
+		copy(dst, o.q)
+		return
+	}
+	s.readGrid(dst, levels, q, u)
+	o.ok, o.ver, o.u = true, s.memo.ver, math.Float64bits(u)
+	o.l, o.q = append(o.l[:0], levels...), append(o.q[:0], dst...)
 }
 
 // QuantilesPair implements PairQuantiler: the corrected grid is found once
@@ -742,6 +782,13 @@ type stackPair struct {
 	ok             bool
 	ver, u         uint64
 	la, lb, qa, qb []float64
+}
+
+// stackOne is the last Quantiles answer of a Stack.
+type stackOne struct {
+	ok     bool
+	ver, u uint64
+	l, q   []float64
 }
 
 // gridPlan says where levels fall on a grid: level j lies on grid[k[j]]

@@ -841,7 +841,8 @@ func (s *Stack) UnmarshalBinary(data []byte) error {
 	next.slab = nil
 	next.sun = [2]sunDay{}
 	next.memo = stackMemo{q: make([]float64, g)}
-	next.pair, next.plan, next.potTab = stackPair{}, gridPlan{}, nil
+	next.pair, next.one, next.plan, next.potTab = stackPair{}, stackOne{}, gridPlan{}, nil
+	next.cw, next.cwGen = nil, nil
 	*s = next
 	if inFlight {
 		s.launch(s.flight, s.fitAge)

@@ -920,6 +920,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		// Every calibrator of the bucket is asked, at night too: a
 		// calibrator may note what it issued (conformal.Split does).
 		levels, offsets, zero := a.adjustments(bucket)
+		same := false // row is the previous step's
 		if x.Night {
 			// publishable zeroes a night row whatever the quantiles, and
 			// settlement passes night forecasts over: no need to ask the
@@ -949,6 +950,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 			// the previous step's row.
 			if prePub && model.SameBits(row, a.prePub) {
 				copy(row, b.Row(i-1))
+				same = true
 			} else {
 				a.prePub = append(a.prePub[:0], row...)
 				a.publishable(row, x)
@@ -960,7 +962,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		}
 		// Neighbouring steps often publish the same row (the weather runs
 		// are hourly, the steps shorter): then their sums are the same too.
-		if i > 0 && model.SameBits(row, b.Row(i-1)) {
+		if i > 0 && (same || model.SameBits(row, b.Row(i-1))) {
 			b.Expected[i] = b.Expected[i-1]
 			continue
 		}
@@ -975,7 +977,11 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 
 // adjustments returns the levels to ask the forecaster for, and the offsets
 // to add, for a lead bucket in this refresh; zero reports whether every
-// offset is zero.
+// offset is zero. The (level, offset) pairs come in the order of their
+// levels, not of the calibrators: a refresh sorts each row it publishes, so
+// the order the values are asked in does not change what is published, and
+// in level order the forecaster's answer is already sorted, or nearly (the
+// calibrators of neighbouring levels often cross).
 func (a *Actor) adjustments(bucket int) (levels, offsets []float64, zero bool) {
 	nl := len(a.cfg.Levels)
 	lo, hi := bucket*nl, (bucket+1)*nl
@@ -985,10 +991,26 @@ func (a *Actor) adjustments(bucket int) (levels, offsets []float64, zero bool) {
 			a.adjLevel[k], a.adjOffset[k] = a.cells[k].cal.Adjust()
 			z = z && a.adjOffset[k] == 0
 		}
+		sortPairs(a.adjLevel[lo:hi], a.adjOffset[lo:hi])
 		a.adjGen[bucket] = a.gen
 		a.adjZero[bucket] = z
 	}
 	return a.adjLevel[lo:hi:hi], a.adjOffset[lo:hi:hi], a.adjZero[bucket]
+}
+
+// sortPairs sorts levels into increasing order, stably, and moves each
+// offset with its level (insertion sort: the calibrated levels cross
+// rarely and by little).
+func sortPairs(levels, offsets []float64) {
+	for i := 1; i < len(levels); i++ {
+		l, o := levels[i], offsets[i]
+		j := i
+		for j > 0 && l < levels[j-1] {
+			levels[j], offsets[j] = levels[j-1], offsets[j-1]
+			j--
+		}
+		levels[j], offsets[j] = l, o
+	}
 }
 
 // replaces reports whether a forecast issued now should replace the

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"math"
 	"math/rand/v2"
+	"slices"
 	"testing"
 	"time"
 
@@ -244,5 +245,17 @@ func TestActorRefusals(t *testing.T) {
 	}
 	if err := a.Meter(&f.readings[40]); err != nil {
 		t.Fatalf("reading 15 minutes late: %v", err)
+	}
+}
+
+// TestSortPairs: levels sorted stably, each offset moved with its level.
+func TestSortPairs(t *testing.T) {
+	levels := []float64{0.1, 0.3, 0.2, 0.2, 0.05, 0.9}
+	offsets := []float64{1, 3, 2, 22, 0.5, 9}
+	sortPairs(levels, offsets)
+	wantL := []float64{0.05, 0.1, 0.2, 0.2, 0.3, 0.9}
+	wantO := []float64{0.5, 1, 2, 22, 3, 9}
+	if !slices.Equal(levels, wantL) || !slices.Equal(offsets, wantO) {
+		t.Errorf("got %v %v, want %v %v", levels, offsets, wantL, wantO)
 	}
 }

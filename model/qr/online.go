@@ -189,6 +189,16 @@ func (m *Online) predWeights() []float64 {
 	return m.w
 }
 
+// Weights copies to dst (of length p) the weights Predict uses now:
+// Predict(x) is the sum of w[i]*x[i], added in order of i from 0. It
+// panics if len(dst) differs from p.
+func (m *Online) Weights(dst []float64) {
+	if len(dst) != m.p {
+		panic(fmt.Sprintf("qr: Weights needs len(dst) = %d, got %d", m.p, len(dst)))
+	}
+	copy(dst, m.predWeights())
+}
+
 // Predict returns the current estimate x' w of the tau-quantile of y given
 // x. It panics if len(x) differs from p.
 func (m *Online) Predict(x []float64) float64 {

@@ -324,3 +324,32 @@ func BenchmarkOnline(b *testing.B) {
 		})
 	}
 }
+
+// TestOnlineWeightsPredict: Predict is the sum of Weights times x, added in
+// order, bit for bit, with and without averaging (the Stack reads the
+// weights once per refresh and predicts with them).
+func TestOnlineWeightsPredict(t *testing.T) {
+	for _, avg := range []int{0, -1} {
+		m := NewOnline(3, 0.7, OnlineOptions{Average: avg})
+		r := rand.New(rand.NewPCG(5, 6))
+		w := make([]float64, 3)
+		for i := range 500 {
+			x := []float64{1, r.NormFloat64(), 3 * r.Float64()}
+			m.Weights(w)
+			want := 0.0
+			for j := range x {
+				want += w[j] * x[j]
+			}
+			if got := m.Predict(x); math.Float64bits(got) != math.Float64bits(want) {
+				t.Fatalf("average %d, update %d: Predict %v, weights give %v", avg, i, got, want)
+			}
+			m.Update(x, 2*x[1]+x[2]+r.NormFloat64())
+		}
+	}
+	defer func() {
+		if recover() == nil {
+			t.Error("Weights with a short dst did not panic")
+		}
+	}()
+	NewOnline(3, 0.5, OnlineOptions{}).Weights(make([]float64, 2))
+}
