@@ -230,9 +230,12 @@ type Actor struct {
 	bundle model.Bundle
 
 	// Calibrators' adjustments, asked once per lead bucket per refresh:
-	// adjLevel and adjOffset [bucket*len(levels)+level] are valid for bucket
-	// when adjGen[bucket] == gen.
+	// adjLevel and adjOffset [bucket*len(levels)+k] are valid for bucket
+	// when adjGen[bucket] == gen, in the order of their levels; adjRank
+	// [bucket*len(levels)+j] is where calibrator j's pair is in that order.
 	adjLevel, adjOffset []float64
+	adjRank             []int32
+	adjOrder            []int32 // scratch of adjustments
 	adjGen              []uint64
 	adjZero             []bool // every offset of the bucket is zero
 	gen                 uint64
@@ -276,6 +279,8 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 	a.spareQ = make([]float64, 2*len(cfg.Levels))
 	a.adjLevel = make([]float64, len(a.cells))
 	a.adjOffset = make([]float64, len(a.cells))
+	a.adjRank = make([]int32, len(a.cells))
+	a.adjOrder = make([]int32, len(cfg.Levels))
 	a.adjGen = make([]uint64, cfg.Buckets.Len())
 	a.adjZero = make([]bool, cfg.Buckets.Len())
 	a.cursor = make([]runCursor, 0, cfg.KeepRuns+1)
@@ -378,7 +383,7 @@ func (a *Actor) Meter(r *model.Reading) error {
 		if a.firstMeter.IsZero() {
 			a.firstMeter = r.IntervalStart
 		}
-		if r.PowerMW > 0.005*a.site.CapacityMW {
+		if r.PowerMW > 0 {
 			// Every quarter-hour the reading spans saw light.
 			for m := 0; m < r.IntervalMinutes; m += 15 {
 				a.lit[slotOf(r.IntervalStart.Add(time.Duration(m)*time.Minute))] = end
@@ -679,6 +684,25 @@ func (a *Actor) publishable(q []float64, x *model.Features) {
 	}
 }
 
+// ownQuantiles writes to own, for each calibrator j of a bucket, its own
+// quantile: pre[rank[j]], the value its (level, offset) gave before the row
+// was sorted, clipped to [0, available capacity] as publishable clips.
+//
+// Settlement judges each calibrator on it, and not on the published
+// (sorted) row's j-th value: where two calibrators' levels cross, sorting
+// hands each the other's value, so a calibrator that misses would raise
+// its level and only push the other's value up, and both would run away
+// (seen on GEFCom2014 solar: levels past 1.8 and below -5). On its own
+// quantile each calibrator is the method as published. The coverage
+// monitors are judged on the same values; the rows differ only where
+// levels cross, by little.
+func (a *Actor) ownQuantiles(own, pre []float64, rank []int32, x *model.Features) {
+	hi := x.CapacityMW * x.Availability
+	for j, k := range rank {
+		own[j] = max(0, min(hi, pre[k]))
+	}
+}
+
 func (a *Actor) step() int {
 	switch {
 	case a.cfg.StepMinutes > 0:
@@ -763,10 +787,13 @@ func (a *Actor) features(x *model.Features, t time.Time, lead, bucket, step int)
 			}
 			x.Night = a.night.vals[i]
 			a.nightAt = i + 1
-		} else if !math.IsNaN(x.Driver) {
-			x.Night = x.Driver <= 0 // no location: trust the forecast irradiance
 		} else {
-			x.Night = a.darkSlot(t) // neither: what the meter has shown
+			// No location: night where the meter has shown no output at
+			// that time of day for darkSlots, and the run (if any)
+			// forecasts no sun. A forecast alone is not enough: a night
+			// step is certain to be zero, and a run's dawn is often an
+			// hour off the meter's.
+			x.Night = (math.IsNaN(x.Driver) || x.Driver <= 0) && a.dark(t, step)
 		}
 	}
 }
@@ -790,14 +817,20 @@ func hourMinute(t time.Time, d time.Duration) (hour, minute int) {
 // irradiance forecast counts it as night.
 const darkSlots = 14 * 24 * time.Hour
 
-// darkSlot reports whether the quarter-hour of the day of t has shown no
-// output for darkSlots while the site was observed that long.
-func (a *Actor) darkSlot(t time.Time) bool {
+// dark reports whether every quarter-hour of the day in the step of
+// minutes from t has shown no output for darkSlots while the site was
+// observed that long.
+func (a *Actor) dark(t time.Time, minutes int) bool {
 	if a.firstMeter.IsZero() || a.now.Sub(a.firstMeter) < darkSlots {
 		return false
 	}
-	lit := a.lit[slotOf(t)]
-	return lit.IsZero() || a.now.Sub(lit) > darkSlots
+	for m := 0; m < max(minutes, 1); m += 15 {
+		lit := a.lit[slotOf(t.Add(time.Duration(m)*time.Minute))]
+		if !lit.IsZero() && a.now.Sub(lit) <= darkSlots {
+			return false
+		}
+	}
+	return true
 }
 
 // slotOf returns the quarter-hour of the day of t (UTC).
@@ -958,7 +991,14 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		}
 		prePub = !x.Night
 		if !stays {
-			copy(pub, row)
+			// Kept for settlement: each calibrator's own quantile, clipped
+			// as published but before sorting, so that each learns from
+			// what its own level gave (see ownQuantiles).
+			if x.Night {
+				clear(pub)
+			} else {
+				a.ownQuantiles(pub, a.prePub, a.adjRank[bucket*nl:(bucket+1)*nl], x)
+			}
 		}
 		// Neighbouring steps often publish the same row (the weather runs
 		// are hourly, the steps shorter): then their sums are the same too.
@@ -991,7 +1031,14 @@ func (a *Actor) adjustments(bucket int) (levels, offsets []float64, zero bool) {
 			a.adjLevel[k], a.adjOffset[k] = a.cells[k].cal.Adjust()
 			z = z && a.adjOffset[k] == 0
 		}
-		sortPairs(a.adjLevel[lo:hi], a.adjOffset[lo:hi])
+		order, rank := a.adjOrder, a.adjRank[lo:hi]
+		for j := range order {
+			order[j] = int32(j)
+		}
+		sortPairs(a.adjLevel[lo:hi], a.adjOffset[lo:hi], order)
+		for k, j := range order {
+			rank[j] = int32(k)
+		}
 		a.adjGen[bucket] = a.gen
 		a.adjZero[bucket] = z
 	}
@@ -999,17 +1046,17 @@ func (a *Actor) adjustments(bucket int) (levels, offsets []float64, zero bool) {
 }
 
 // sortPairs sorts levels into increasing order, stably, and moves each
-// offset with its level (insertion sort: the calibrated levels cross
-// rarely and by little).
-func sortPairs(levels, offsets []float64) {
+// offset and index with its level (insertion sort: the calibrated levels
+// cross rarely and by little).
+func sortPairs(levels, offsets []float64, idx []int32) {
 	for i := 1; i < len(levels); i++ {
-		l, o := levels[i], offsets[i]
+		l, o, x := levels[i], offsets[i], idx[i]
 		j := i
 		for j > 0 && l < levels[j-1] {
-			levels[j], offsets[j] = levels[j-1], offsets[j-1]
+			levels[j], offsets[j], idx[j] = levels[j-1], offsets[j-1], idx[j-1]
 			j--
 		}
-		levels[j], offsets[j] = l, o
+		levels[j], offsets[j], idx[j] = l, o, x
 	}
 }
 

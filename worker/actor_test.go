@@ -248,14 +248,84 @@ func TestActorRefusals(t *testing.T) {
 	}
 }
 
-// TestSortPairs: levels sorted stably, each offset moved with its level.
+// TestSortPairs: levels sorted stably, each offset and index moved with
+// its level.
 func TestSortPairs(t *testing.T) {
 	levels := []float64{0.1, 0.3, 0.2, 0.2, 0.05, 0.9}
 	offsets := []float64{1, 3, 2, 22, 0.5, 9}
-	sortPairs(levels, offsets)
+	idx := []int32{0, 1, 2, 3, 4, 5}
+	sortPairs(levels, offsets, idx)
 	wantL := []float64{0.05, 0.1, 0.2, 0.2, 0.3, 0.9}
 	wantO := []float64{0.5, 1, 2, 22, 3, 9}
-	if !slices.Equal(levels, wantL) || !slices.Equal(offsets, wantO) {
-		t.Errorf("got %v %v, want %v %v", levels, offsets, wantL, wantO)
+	wantI := []int32{4, 0, 2, 3, 1, 5}
+	if !slices.Equal(levels, wantL) || !slices.Equal(offsets, wantO) || !slices.Equal(idx, wantI) {
+		t.Errorf("got %v %v %v, want %v %v %v", levels, offsets, idx, wantL, wantO, wantI)
+	}
+}
+
+// TestDarkWithoutLocation: a PV site without a location counts a step as
+// night only if no reading in the last 14 days showed any output in any of
+// its quarter-hours: a dawn quarter-hour that once gave a trickle (far below
+// 0.5 % of capacity) is not night, so the forecaster is asked and the
+// calibrators learn from it (GEFCom2014 solar: such dawn hours, taken for
+// night from the run, were 4 % of the scored forecasts, each a miss at
+// every level).
+func TestDarkWithoutLocation(t *testing.T) {
+	s := model.Site{ID: "pv-noloc", Kind: model.KindPV, CapacityMW: 10}
+	a := newTestActor(t, s)
+	trickle := t0.Add(3*24*time.Hour + 6*time.Hour) // day 3, 06:00-06:15
+	for i := 0; i < 16*96; i++ {
+		st := t0.Add(time.Duration(i) * 15 * time.Minute)
+		p := 0.0
+		if h := st.Hour(); h >= 9 && h < 17 {
+			p = 5
+		}
+		if st.Equal(trickle) {
+			p = 1e-4
+		}
+		r := model.Reading{Site: s.ID, IntervalStart: st, IntervalMinutes: 15, PowerMW: p, Availability: 1}
+		if err := a.Meter(&r); err != nil {
+			t.Fatal(err)
+		}
+	}
+	day := t0.Add(16 * 24 * time.Hour)
+	for _, c := range []struct {
+		at      time.Duration
+		minutes int
+		dark    bool
+	}{
+		{2 * time.Hour, 15, true},
+		{6 * time.Hour, 15, false}, // the trickle
+		{6*time.Hour + 15*time.Minute, 15, true},
+		{5 * time.Hour, 60, true},
+		{5*time.Hour + 30*time.Minute, 60, false}, // spans 06:00
+		{12 * time.Hour, 15, false},
+	} {
+		if got := a.dark(day.Add(c.at), c.minutes); got != c.dark {
+			t.Errorf("dark(%s, %d min) = %v, want %v", c.at, c.minutes, got, c.dark)
+		}
+	}
+	// Fewer than 14 days observed: nothing is dark yet.
+	b := newTestActor(t, s)
+	r := model.Reading{Site: s.ID, IntervalStart: t0, IntervalMinutes: 15, Availability: 1}
+	if err := b.Meter(&r); err != nil {
+		t.Fatal(err)
+	}
+	if b.dark(t0.Add(2*time.Hour), 15) {
+		t.Error("dark after one reading")
+	}
+}
+
+// TestOwnQuantiles: each calibrator's own value is the pre-sort row's value
+// at its rank, clipped to [0, available capacity].
+func TestOwnQuantiles(t *testing.T) {
+	a := newTestActor(t, testSites()[1])
+	x := &model.Features{CapacityMW: 20, Availability: 0.5}
+	pre := []float64{-1, 3, 4, 12} // asked in level order
+	rank := []int32{2, 0, 3, 1}    // calibrator 0's level is the third smallest
+	own := make([]float64, 4)
+	a.ownQuantiles(own, pre, rank, x)
+	if want := []float64{4, 0, 10, 3}; !slices.Equal(own, want) {
+		t.Errorf("own %v, want %v", own, want)
 	}
 }

@@ -185,15 +185,19 @@ func playHash(t *testing.T, h hash.Hash, a *Actor, f feed) {
 // after two intended changes of behaviour: each (interval, lead bucket)
 // keeps a reservoir sample of the forecasts issued for it for its
 // calibrators instead of the latest (Actor.replaces), and the features of
-// the latest for the forecaster to learn from. Any other change of these
-// bytes is a bug.
-const wantFingerprint = "7e716abaf710192ff60ec653c0573eb507ac990327de9cbd4a7d307a732c9662"
+// the latest for the forecaster to learn from; and again after two more:
+// each calibrator is judged on its own quantile, not the sorted row's
+// (Actor.ownQuantiles), and a PV site without a location counts a step as
+// night only where the meter has shown no output at all (Actor.dark).
+// Any other change of these bytes is a bug.
+const wantFingerprint = "667eb988c1279fa80aab85562c75c9b4179f2befd6b8344d833653fd775fa62c"
 
 // wantMoreFingerprint is the SHA-256 of everything moreFingerprintCases
 // give out (the calibrators pid, dtaci and split, and the reference
 // forecasters), recorded like wantFingerprint: first from the code of
-// commit de617d0, again after the reservoir sampling of pending forecasts.
-const wantMoreFingerprint = "dc82f726911991be770c72d0ef9e1049af9ae39a987ed07f2d7b51e2eb5d3666"
+// commit de617d0, again after the reservoir sampling of pending forecasts,
+// and after each calibrator was judged on its own quantile.
+const wantMoreFingerprint = "99713d66918d02859d181e247c6faa63855620d399ce3c5ceb80c1d48da170cc"
 
 // TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
 // events, refusals, coverage statistics) over a fixed invented feed is the
@@ -254,8 +258,9 @@ func demoFingerprint(t *testing.T) string {
 }
 
 // wantDemoFingerprint was recorded like wantFingerprint: from the code of
-// commit de617d0, again after the reservoir sampling of pending forecasts.
-const wantDemoFingerprint = "5147ec9d8f1a6f695287821c41bb402a5e4d32fcf588822f17a4aa426a66cdad"
+// commit de617d0, again after the reservoir sampling of pending forecasts,
+// and after each calibrator was judged on its own quantile.
+const wantDemoFingerprint = "6fc715e86119454b9778a97b819b9f68f30b90640754df003f784fbcd855669c"
 
 // TestDemoFingerprintUnchanged: replaying the demo fleet gives the same
 // bundles and alarms, byte for byte, as before the performance work.
