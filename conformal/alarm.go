@@ -133,7 +133,7 @@ func (o AlarmOptions) resolve() (AlarmOptions, error) {
 // CoverageAlarm is the hysteresis state machine of the "calibrated coverage
 // off target" alarm of one (lead bucket, level). It is raised when the
 // window holds at least MinSamples outcomes, the coverage is further than
-// Tolerance from target and the Kupiec test rejects; it clears when the
+// Tolerance from target and the batch-means test rejects; it clears when the
 // coverage is back within ClearTolerance. Between the two thresholds it
 // keeps its state, so it does not flap.
 //

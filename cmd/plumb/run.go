@@ -78,7 +78,7 @@ func (w *workerFlags) register(fs *flag.FlagSet) {
 		" (aci: adaptive conformal inference; pid: quantile tracker with integrator; dtaci: ACI with self-tuned step; split: rolling split conformal; none: the raw model)")
 	fs.Float64Var(&w.gamma, "gamma", 0.005, "step size of the aci calibrator")
 	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which live coverage is judged")
-	fs.Float64Var(&w.tolerance, "alarm-tolerance", 0.05, "raise a coverage alarm when live coverage is further than this from the level (and the Kupiec test rejects at 1 %)")
+	fs.Float64Var(&w.tolerance, "alarm-tolerance", 0.05, "raise a coverage alarm when live coverage is further than this from the level (and the batch-means coverage test rejects at 1 %)")
 	fs.IntVar(&w.shards, "shards", 2, "goroutines the site actors are spread over")
 	fs.DurationVar(&w.reorder, "reorder-window", 0, "hold each input until one this much later in event time has come, and apply them in event-time order: inputs shuffled within the window (several meter gateways, retries) then give exactly the state inputs in order give, and bundles lag by the window (0: apply on arrival; at most 6h, the lateness)")
 }

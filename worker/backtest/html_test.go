@@ -795,3 +795,34 @@ func TestHTMLNumTicks(t *testing.T) {
 		})
 	}
 }
+
+// TestRecovery: rolling coverage against nominal and against a base
+// report, worked by hand on three-day windows.
+func TestRecovery(t *testing.T) {
+	d0 := time.Date(2026, 3, 1, 0, 0, 0, 0, time.UTC)
+	mk := func(hits ...int) *Report {
+		r := &Report{Variants: []Variant{{}}}
+		for i, h := range hits {
+			r.Variants[0].Daily = append(r.Variants[0].Daily, Day{Start: d0.AddDate(0, 0, i), N: 10, IntervalHits: []int{h}})
+		}
+		return r
+	}
+	base := mk(8, 8, 8, 8, 8, 8, 8, 8)
+	r := mk(8, 8, 8, 2, 8, 8, 8, 7)
+	spec := RecoverySpec{At: d0.AddDate(0, 0, 3), Window: 3, Tol: 0.05, Intervals: []int{0}, Nominal: []float64{0.8}}
+	// Windows ending on days 3..7: (8+8+2)/30 - 0.8 = -0.2 on days 3, 4, 5,
+	// then 0, then (8+8+7)/30 - 0.8 = -0.0333.
+	got := r.Recovery(0, spec, base)
+	if math.Abs(got.Before[0]) > 1e-12 || math.Abs(got.Worst[0]+0.2) > 1e-12 || got.Back[0] != 3 {
+		t.Errorf("against base: got %+v, want before 0, worst -0.2, back after 3 days", got)
+	}
+	got = r.Recovery(0, spec, nil)
+	if math.Abs(got.Before[0]-0.8) > 1e-12 || math.Abs(got.Worst[0]-0.6) > 1e-12 || got.Back[0] != 3 {
+		t.Errorf("against nominal: got %+v, want before 0.8, worst 0.6, back after 3 days", got)
+	}
+	// Judged over two days only, the windows never come back.
+	spec.Horizon, spec.Tol = 2, 0.01
+	if got = r.Recovery(0, spec, nil); got.Back[0] != -1 || math.Abs(got.Worst[0]-0.6) > 1e-12 {
+		t.Errorf("two days judged: got %+v, want never back, worst 0.6", got)
+	}
+}

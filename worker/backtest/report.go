@@ -226,63 +226,107 @@ type AlarmCount struct {
 	First  time.Time `json:"first_raised"`
 }
 
-// Recovery is how the 80 % and 90 % central intervals of a variant fared
-// after a change at event time at, on rolling windows of whole days.
+// Recovery is how central intervals of a variant fared after a change at
+// event time, on rolling windows of whole days (Report.Recovery).
 type Recovery struct {
-	// Before is the coverage of each interval over the window before the
-	// change; Worst the furthest from nominal of the rolling windows ending
-	// after it.
+	// Before is each interval's rolling coverage (or its difference from
+	// the base report's) over the window ending the day before the change;
+	// Worst the furthest from nominal (or from zero: a signed difference)
+	// of the windows ending on the judged days.
 	Before, Worst []float64
-	// Back is the number of days after the change at which the rolling
-	// coverage of each interval was within tol of nominal for good (until
-	// the end of the scored data); -1 if it never was.
+	// Back is the number of days after the change from which every judged
+	// window was within Tol; -1 if the last one was not.
 	Back []int
 }
 
-// RecoveryAfter measures a variant's central intervals (Report
-// Variants[vi], the intraday view) around a change at event time at: the
-// coverage over rolling windows of window days, from the daily counts.
-// ivs picks the intervals by index in Scores.Intervals.
-func (r *Report) RecoveryAfter(vi int, at time.Time, window int, tol float64, ivs []int, nominal []float64) Recovery {
+// RecoverySpec says what Report.Recovery measures.
+type RecoverySpec struct {
+	// At is the change (event time); the first judged window ends on its
+	// UTC day.
+	At time.Time
+	// Window is the length of the rolling windows in days; Horizon the
+	// number of days judged from the change on (0: to the end of the data).
+	Window, Horizon int
+	// Tol is how far a window may be from nominal (or from the base's).
+	Tol float64
+	// Intervals picks central intervals by index in Scores.Intervals, and
+	// Nominal gives their nominal coverage.
+	Intervals []int
+	Nominal   []float64
+}
+
+// Recovery measures a variant's central intervals (Variants[vi], the
+// intraday view, from the daily counts) around a change: the coverage over
+// rolling windows against nominal, or, with base (a report of the same
+// history without the change, with the same variants) not nil, each
+// window's coverage less the same window's in base; days base lacks are
+// skipped.
+func (r *Report) Recovery(vi int, s RecoverySpec, base *Report) Recovery {
 	days := r.Variants[vi].Daily
-	rec := Recovery{Before: make([]float64, len(ivs)), Worst: make([]float64, len(ivs)), Back: make([]int, len(ivs))}
-	change := at.UTC().Truncate(24 * time.Hour)
-	cov := func(end, k int) (float64, bool) { // window of days ending at index end (inclusive)
-		n, hits := 0, 0
-		for d := max(0, end-window+1); d <= end; d++ {
-			n += days[d].N
-			hits += days[d].IntervalHits[ivs[k]]
+	var ref []Day
+	if base != nil {
+		byDay := make(map[time.Time]Day, len(base.Variants[vi].Daily))
+		for _, d := range base.Variants[vi].Daily {
+			byDay[d.Start] = d
 		}
-		return float64(hits) / float64(max(n, 1)), n > 0
+		var mine []Day
+		for _, d := range days {
+			if b, ok := byDay[d.Start]; ok {
+				mine, ref = append(mine, d), append(ref, b)
+			}
+		}
+		days = mine
 	}
-	first := len(days)
+	cov := func(ds []Day, end, k int) float64 { // window of days ending at index end (inclusive)
+		n, hits := 0, 0
+		for d := max(0, end-s.Window+1); d <= end; d++ {
+			n += ds[d].N
+			hits += ds[d].IntervalHits[s.Intervals[k]]
+		}
+		return float64(hits) / float64(max(n, 1))
+	}
+	// off is window i's coverage less its reference: nominal, or base's.
+	off := func(i, k int) float64 {
+		if ref != nil {
+			return cov(days, i, k) - cov(ref, i, k)
+		}
+		return cov(days, i, k) - s.Nominal[k]
+	}
+	change := s.At.UTC().Truncate(24 * time.Hour)
+	first, last := len(days), len(days)
 	for i, d := range days {
-		if !d.Start.Before(change) {
+		if first == len(days) && !d.Start.Before(change) {
 			first = i
+		}
+		if s.Horizon > 0 && !d.Start.Before(change.AddDate(0, 0, s.Horizon)) {
+			last = i
 			break
 		}
 	}
-	for k := range ivs {
+	n := len(s.Intervals)
+	rec := Recovery{Before: make([]float64, n), Worst: make([]float64, n), Back: make([]int, n)}
+	for k := range s.Intervals {
 		rec.Back[k] = -1
 		if first > 0 {
-			rec.Before[k], _ = cov(first-1, k)
+			rec.Before[k] = off(first-1, k)
 		}
-		rec.Worst[k] = nominal[k]
-		good := -1 // first day index from which every window is within tol
-		for i := first; i < len(days); i++ {
-			c, ok := cov(i, k)
-			if !ok {
-				continue
-			}
-			if d := c - nominal[k]; d*d > (rec.Worst[k]-nominal[k])*(rec.Worst[k]-nominal[k]) {
-				rec.Worst[k] = c
+		worst, good := 0.0, -1 // good: first day index from which every window is within Tol
+		for i := first; i < last; i++ {
+			d := off(i, k)
+			if d*d > worst*worst {
+				worst = d
 			}
 			switch {
-			case c < nominal[k]-tol || c > nominal[k]+tol:
+			case d < -s.Tol || d > s.Tol:
 				good = -1
 			case good < 0:
 				good = i
 			}
+		}
+		rec.Worst[k] = worst
+		if ref == nil {
+			rec.Before[k] += s.Nominal[k]
+			rec.Worst[k] += s.Nominal[k]
 		}
 		if good >= 0 {
 			rec.Back[k] = int(days[good].Start.Sub(change) / (24 * time.Hour))
