@@ -210,6 +210,7 @@ type Actor struct {
 	spareX pendingX
 	xRun   *model.WeatherRun // the run of a.x.Weather (features sets both)
 	spareQ []float64
+	rawCut []float64 // settle: a pending forecast's raw quantiles, clipped
 
 	cells  []cell // [bucket*len(levels)+level]
 	events []conformal.Event
@@ -277,6 +278,7 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 	h.Write([]byte(site.ID))
 	a.siteHash = h.Sum64()
 	a.spareQ = make([]float64, 2*len(cfg.Levels))
+	a.rawCut = make([]float64, len(cfg.Levels))
 	a.adjLevel = make([]float64, len(a.cells))
 	a.adjOffset = make([]float64, len(a.cells))
 	a.adjRank = make([]int32, len(a.cells))
@@ -583,8 +585,17 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 		if px.night {
 			continue
 		}
-		pit := pitOf(a.cfg.Levels, raw, y)
+		// The PIT of the raw forecast as it would have been published:
+		// clipped to [0, available capacity], so that an outcome at a
+		// bound (no output, full output) ties with the quantiles clipped
+		// there, as the calibrated ones are judged (dtaci's experts and
+		// the raw monitor read it).
+		hi := a.site.CapacityMW * px.avail
+		for j, v := range raw {
+			a.rawCut[j] = max(0, min(hi, v))
+		}
 		u := conformal.TieDraw(a.siteHash, r.IntervalStart, b)
+		pit := pitOf(a.cfg.Levels, a.rawCut, y, u)
 		for j := 0; j < nl; j++ {
 			c := &a.cells[b*nl+j]
 			hit := conformal.TieHit(a.cfg.Levels, pub, j, y, u)
@@ -634,8 +645,15 @@ func (a *Actor) Events() []conformal.Event {
 }
 
 // pitOf interpolates the raw forecast's cumulative probability at y on its
-// grid of levels (0 or 1 outside the grid's span).
-func pitOf(levels, q []float64, y float64) float64 {
+// grid of levels (0 or 1 outside the grid's span). Where y equals a run of
+// quantiles (an atom: zero output, or full output, forecast with some
+// probability) the PIT is drawn by u in [0, 1) across the atom's levels, as
+// conformal.TieHit judges a tie: the randomised PIT, uniform under a
+// calibrated forecast. Without the draw, every outcome in an atom had the
+// PIT of the atom's top, which counted it above each quantile of the atom
+// but the last (a miss where the quantile equals the outcome) and pushed
+// the low levels' raw coverage, and dtaci's experts, the wrong way.
+func pitOf(levels, q []float64, y, u float64) float64 {
 	n := len(levels)
 	if n == 0 || math.IsNaN(y) {
 		return math.NaN()
@@ -643,11 +661,28 @@ func pitOf(levels, q []float64, y float64) float64 {
 	if y < q[0] {
 		return 0
 	}
-	if y >= q[n-1] {
+	if y > q[n-1] {
 		return 1
 	}
-	for j := 1; j < n; j++ {
-		if y < q[j] {
+	for j := 0; j < n; j++ {
+		switch {
+		case y == q[j]:
+			jb := j
+			for jb+1 < n && q[jb+1] == y {
+				jb++
+			}
+			if j == jb && j > 0 && jb < n-1 {
+				return levels[j] // one quantile equal to y, no atom
+			}
+			lo, hi := 0.0, 1.0
+			if j > 0 {
+				lo = levels[j-1]
+			}
+			if jb < n-1 {
+				hi = levels[jb]
+			}
+			return lo + u*(hi-lo)
+		case y < q[j]:
 			w := (y - q[j-1]) / (q[j] - q[j-1])
 			return levels[j-1] + w*(levels[j]-levels[j-1])
 		}

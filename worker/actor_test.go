@@ -329,3 +329,28 @@ func TestOwnQuantiles(t *testing.T) {
 		t.Errorf("own %v, want %v", own, want)
 	}
 }
+
+// TestPITOf: the raw PIT interpolated between levels, 0 and 1 beyond the
+// grid, and drawn across an atom (quantiles equal to the outcome) as
+// conformal.TieHit judges a tie.
+func TestPITOf(t *testing.T) {
+	levels := []float64{0.1, 0.5, 0.9}
+	for _, c := range []struct {
+		q       []float64
+		y, u    float64
+		want    float64
+		comment string
+	}{
+		{[]float64{1, 2, 4}, 3, 0.7, 0.7, "between 0.5 and 0.9"},
+		{[]float64{1, 2, 4}, 0.5, 0.7, 0, "below the grid"},
+		{[]float64{1, 2, 4}, 5, 0.7, 1, "above the grid"},
+		{[]float64{1, 2, 4}, 2, 0.7, 0.5, "on one quantile, no atom"},
+		{[]float64{0, 0, 4}, 0, 0.25, 0.125, "an atom at zero: drawn in [0, 0.5]"},
+		{[]float64{0, 2, 4}, 0, 0.5, 0.05, "one zero quantile, the lowest: drawn in [0, 0.1]"},
+		{[]float64{0, 4, 4}, 4, 0.5, 0.55, "an atom at capacity: drawn in [0.1, 1]"},
+	} {
+		if got := pitOf(levels, c.q, c.y, c.u); math.Abs(got-c.want) > 1e-12 {
+			t.Errorf("%s: pitOf(%v, %v, u %v) = %v, want %v", c.comment, c.q, c.y, c.u, got, c.want)
+		}
+	}
+}

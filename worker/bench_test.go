@@ -187,17 +187,20 @@ func playHash(t *testing.T, h hash.Hash, a *Actor, f feed) {
 // calibrators instead of the latest (Actor.replaces), and the features of
 // the latest for the forecaster to learn from; and again after two more:
 // each calibrator is judged on its own quantile, not the sorted row's
-// (Actor.ownQuantiles), and a PV site without a location counts a step as
-// night only where the meter has shown no output at all (Actor.dark).
+// (Actor.ownQuantiles), a PV site without a location counts a step as
+// night only where the meter has shown no output at all (Actor.dark), and
+// the raw PIT is taken on the clipped raw quantiles with ties drawn
+// (pitOf).
 // Any other change of these bytes is a bug.
-const wantFingerprint = "667eb988c1279fa80aab85562c75c9b4179f2befd6b8344d833653fd775fa62c"
+const wantFingerprint = "dcbb73068a74117ec7235987bc88dc3b5d56768cb88f1f024699323232b1d870"
 
 // wantMoreFingerprint is the SHA-256 of everything moreFingerprintCases
 // give out (the calibrators pid, dtaci and split, and the reference
 // forecasters), recorded like wantFingerprint: first from the code of
 // commit de617d0, again after the reservoir sampling of pending forecasts,
-// and after each calibrator was judged on its own quantile.
-const wantMoreFingerprint = "99713d66918d02859d181e247c6faa63855620d399ce3c5ceb80c1d48da170cc"
+// and after each calibrator was judged on its own quantile and the raw PIT
+// was taken on clipped quantiles with ties drawn.
+const wantMoreFingerprint = "975f97514ea6986d9b1fa280df62b7773b74dde7fecf9be0eca66dae66c955af"
 
 // TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
 // events, refusals, coverage statistics) over a fixed invented feed is the
@@ -259,8 +262,9 @@ func demoFingerprint(t *testing.T) string {
 
 // wantDemoFingerprint was recorded like wantFingerprint: from the code of
 // commit de617d0, again after the reservoir sampling of pending forecasts,
-// and after each calibrator was judged on its own quantile.
-const wantDemoFingerprint = "6fc715e86119454b9778a97b819b9f68f30b90640754df003f784fbcd855669c"
+// and after each calibrator was judged on its own quantile and the raw PIT
+// was taken on clipped quantiles with ties drawn.
+const wantDemoFingerprint = "7c78234deba50e15468b12579c76a2a4801bbd96f6e9c1abbbaa2f1c2c247442"
 
 // TestDemoFingerprintUnchanged: replaying the demo fleet gives the same
 // bundles and alarms, byte for byte, as before the performance work.
