@@ -6,12 +6,19 @@ import (
 )
 
 // DefaultGamma is the ACI step size used when ACIOptions.Gamma is zero.
-const DefaultGamma = 0.005
+// It was 0.005 (the value of Gibbs and Candes's experiments, as we recall
+// it) until backtests on the open data sets (intraday view, stack
+// forecaster) showed what the step costs: serf-pv-15min pinball loss +3.9 %
+// over the raw model at 0.005, +1.4 % at 0.003, +0.3 % at 0.002, with the
+// long-run coverage of every level within 1 point in every bucket but the
+// last at 0.003 as at 0.005 (0.010 at 0.002); GEFCom2014 solar -2.4 % and
+// -2.3 %, GEFCom2012 wind +1.5 % and +0.8 %.
+const DefaultGamma = 0.003
 
 // ACIOptions configures an ACI calibrator. The zero value is the default.
 type ACIOptions struct {
 	// Gamma is the step size of the miss-rate update. Zero means
-	// DefaultGamma (0.005); a larger step reacts faster to a change and
+	// DefaultGamma (0.003); a larger step reacts faster to a change and
 	// makes the issued level noisier. It must be positive and finite.
 	Gamma float64
 }

@@ -209,8 +209,8 @@ func TestNewACIPanicsOnMisuse(t *testing.T) {
 
 func TestACIDefaults(t *testing.T) {
 	a := NewACI(0.95, ACIOptions{})
-	if a.Gamma() != 0.005 || a.Level() != 0.95 || a.Name() != "aci" {
-		t.Errorf("gamma %v, level %v, name %q; want 0.005, 0.95, aci", a.Gamma(), a.Level(), a.Name())
+	if a.Gamma() != 0.003 || a.Level() != 0.95 || a.Name() != "aci" {
+		t.Errorf("gamma %v, level %v, name %q; want 0.003, 0.95, aci", a.Gamma(), a.Level(), a.Name())
 	}
 	if l, off := a.Adjust(); !near(l, 0.95, 1e-15) || off != 0 {
 		t.Errorf("fresh Adjust = (%v, %v), want (0.95, 0)", l, off)

@@ -190,17 +190,18 @@ func playHash(t *testing.T, h hash.Hash, a *Actor, f feed) {
 // (Actor.ownQuantiles), a PV site without a location counts a step as
 // night only where the meter has shown no output at all (Actor.dark), and
 // the raw PIT is taken on the clipped raw quantiles with ties drawn
-// (pitOf).
+// (pitOf), and the default ACI step went from 0.005 to 0.003.
 // Any other change of these bytes is a bug.
-const wantFingerprint = "dcbb73068a74117ec7235987bc88dc3b5d56768cb88f1f024699323232b1d870"
+const wantFingerprint = "7391039fc29470dc1c3b0dc31fb12599681265483fa7912829ba2ac32e7fbe29"
 
 // wantMoreFingerprint is the SHA-256 of everything moreFingerprintCases
 // give out (the calibrators pid, dtaci and split, and the reference
 // forecasters), recorded like wantFingerprint: first from the code of
 // commit de617d0, again after the reservoir sampling of pending forecasts,
-// and after each calibrator was judged on its own quantile and the raw PIT
-// was taken on clipped quantiles with ties drawn.
-const wantMoreFingerprint = "975f97514ea6986d9b1fa280df62b7773b74dde7fecf9be0eca66dae66c955af"
+// and after each calibrator was judged on its own quantile, the raw PIT
+// was taken on clipped quantiles with ties drawn and the default ACI step
+// became 0.003.
+const wantMoreFingerprint = "cb745c82eb2cbfefe30a07a753aae689f3efc0c7444708937be2afd37bda8afa"
 
 // TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
 // events, refusals, coverage statistics) over a fixed invented feed is the
@@ -262,9 +263,10 @@ func demoFingerprint(t *testing.T) string {
 
 // wantDemoFingerprint was recorded like wantFingerprint: from the code of
 // commit de617d0, again after the reservoir sampling of pending forecasts,
-// and after each calibrator was judged on its own quantile and the raw PIT
-// was taken on clipped quantiles with ties drawn.
-const wantDemoFingerprint = "7c78234deba50e15468b12579c76a2a4801bbd96f6e9c1abbbaa2f1c2c247442"
+// and after each calibrator was judged on its own quantile, the raw PIT
+// was taken on clipped quantiles with ties drawn and the default ACI step
+// became 0.003.
+const wantDemoFingerprint = "b3cf96446421ee523ba733137854d363652bb99d1208e593306354ec04051b47"
 
 // TestDemoFingerprintUnchanged: replaying the demo fleet gives the same
 // bundles and alarms, byte for byte, as before the performance work.

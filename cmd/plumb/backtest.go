@@ -60,7 +60,7 @@ func runBacktest(ctx context.Context, args []string, stdout, stderr io.Writer) e
 		levelsArg   = fs.String("levels", "default", "quantile `levels`: 'default' (0.05..0.95), 'percentiles' (0.01..0.99, as GEFCom) or a list")
 		models      = fs.String("models", "stack", "forecasters to run side by side, comma-separated: "+strings.Join(model.Names(), ", "))
 		calibrators = fs.String("calibrators", "aci", "calibrators to run with each model, comma-separated: "+strings.Join(conformal.Methods(), ", "))
-		gamma       = fs.Float64("gamma", 0.005, "step size of the aci calibrator")
+		gamma       = fs.Float64("gamma", conformal.DefaultGamma, "step size of the aci calibrator: larger follows a change faster, and costs more pinball loss")
 		hour        = fs.Int("day-ahead-hour", 0, "UTC `hour` of the forecasts in the day-ahead view")
 		issueHours  = fs.String("issue-hours", "", "UTC issue `hours` of the day-ahead view, a list such as 0,12 (each weather run); overrides --day-ahead-hour")
 		viewHorizon = fs.Duration("view-horizon", 24*time.Hour, "leads the day-ahead view keeps: under this `duration`")

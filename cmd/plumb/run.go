@@ -76,7 +76,7 @@ func (w *workerFlags) register(fs *flag.FlagSet) {
 	fs.DurationVar(&w.horizon, "horizon", 0, "how far ahead a bundle reaches (0: to the end of the next UTC day, at least 36h)")
 	fs.StringVar(&w.calibrator, "calibrator", "aci", "online calibrator per lead bucket and level: "+strings.Join(conformal.Methods(), ", ")+
 		" (aci: adaptive conformal inference; pid: quantile tracker with integrator; dtaci: ACI with self-tuned step; split: rolling split conformal; none: the raw model)")
-	fs.Float64Var(&w.gamma, "gamma", 0.005, "step size of the aci calibrator")
+	fs.Float64Var(&w.gamma, "gamma", conformal.DefaultGamma, "step size of the aci calibrator: larger follows a change faster, and costs more pinball loss")
 	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which live coverage is judged")
 	fs.Float64Var(&w.tolerance, "alarm-tolerance", 0.05, "raise a coverage alarm when live coverage is further than this from the level (and the batch-means coverage test rejects at 1 %)")
 	fs.IntVar(&w.shards, "shards", 2, "goroutines the site actors are spread over")

@@ -31,7 +31,7 @@ func maxCoverageError(levels []float64, v View) []float64 {
 // meet both in every bucket but the last, open-ended one (36 h and more),
 // which is logged, not held: there the raw model is furthest off (5 to 10
 // points), its calibrators settle the fewest outcomes, and ACI's lag leaves
-// 1.2 (wind) to 1.5 (solar) points (not met yet).
+// 1 to 3 points (not met yet).
 func TestCalibratedCoverageOpenData(t *testing.T) {
 	if testing.Short() {
 		t.Skip("backtests of a year of solar and three years of wind")
