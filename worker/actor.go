@@ -847,9 +847,10 @@ func hourMinute(t time.Time, d time.Duration) (hour, minute int) {
 	return int(s / 3600), int(s % 3600 / 60)
 }
 
-// darkSlots is how long a quarter-hour of the day must have shown no output,
-// on every day with a reading, before a PV site without location or
-// irradiance forecast counts it as night.
+// darkSlots is how long a quarter-hour of the day must have shown no output
+// (not the least positive reading), on every day with a reading, before a
+// PV site without a location counts it as night (and then only where the
+// run in force, if any, forecasts no sun).
 const darkSlots = 14 * 24 * time.Hour
 
 // dark reports whether every quarter-hour of the day in the step of
