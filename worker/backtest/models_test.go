@@ -169,3 +169,39 @@ func TestSerfStackBeatsPersistence(t *testing.T) {
 		}
 	}
 }
+
+// TestReadingUpdatesBeatRunForecasts: the models issue asks that forecasts
+// issued when a new meter reading arrives beat those issued at the last
+// weather run, at short leads. On GEFCom2012 wind (wf1-wf4, scored July to
+// December 2010, runs at 00 and 12 UTC reaching 48 h), the forecasts issued
+// at the runs with leads under 12 h cover every target hour once, as do the
+// forecasts issued at the reading just before each target hour (lead under
+// 1 h), or 1-2 h or 2-4 h before it: each of those must score a lower mean
+// pinball loss than the run-time forecasts of the same hours.
+func TestReadingUpdatesBeatRunForecasts(t *testing.T) {
+	if testing.Short() {
+		t.Skip("a year and a half of four farms with forests")
+	}
+	t.Parallel()
+	dir, h := loadShared(t, "gefcom2012-wind")
+	o := Options{
+		Data: dir, From: day("2010-07-01"), To: day("2011-01-01"),
+		Variants:   []VariantSpec{{"stack", "none"}},
+		IssueHours: []int{0, 12}, ViewHorizon: 12 * time.Hour,
+		Bands: model.Buckets{Edges: []int{0, 60, 120, 240, 720}},
+	}
+	rep, err := Run(context.Background(), h, o)
+	if err != nil {
+		t.Fatal(err)
+	}
+	v := rep.Variants[0]
+	atRun := v.DayAhead.All
+	t.Logf("issued at the runs, leads 0-12 h: mean pinball %.5f over %d forecasts", atRun.Pinball, atRun.N)
+	for b := range 3 {
+		got := v.Intraday.ByBucket[b]
+		t.Logf("issued at a reading, leads %s: %.5f over %d forecasts", rep.Buckets[b], got.Pinball, got.N)
+		if got.N == 0 || !(got.Pinball < atRun.Pinball) {
+			t.Errorf("leads %s: forecasts issued at readings score %.5f, not below the run-time forecasts' %.5f", rep.Buckets[b], got.Pinball, atRun.Pinball)
+		}
+	}
+}
