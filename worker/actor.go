@@ -202,7 +202,6 @@ type Actor struct {
 	// and the raw then the published quantiles at recQ[r/recChunk], from
 	// (r%recChunk)*2*len(levels).
 	recX    [][]pendingX
-	recL    [][]pendingX // the latest forecast's features, which the forecaster learns from
 	recQ    [][]float64
 	nrec    int32   // records made
 	freeRec []int32 // records no longer in use
@@ -509,11 +508,6 @@ func (a *Actor) record(r int32) (x *pendingX, raw, pub []float64) {
 	return &a.recX[c][k], q[:nl:nl], q[nl:]
 }
 
-// latest returns the features of the latest forecast of record r.
-func (a *Actor) latest(r int32) *pendingX {
-	return &a.recL[r/recChunk][r%recChunk]
-}
-
 // newRecord returns a record number not in use.
 func (a *Actor) newRecord() int32 {
 	if k := len(a.freeRec); k > 0 {
@@ -523,7 +517,6 @@ func (a *Actor) newRecord() int32 {
 	}
 	if a.nrec%recChunk == 0 {
 		a.recX = append(a.recX, make([]pendingX, recChunk))
-		a.recL = append(a.recL, make([]pendingX, recChunk))
 		a.recQ = append(a.recQ, make([]float64, recChunk*2*len(a.cfg.Levels)))
 	}
 	a.nrec++
@@ -575,16 +568,19 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 		if r.Curtailed {
 			continue
 		}
-		if lx := a.latest(rec); !lx.night {
-			// The forecaster learns from the latest forecast of the
-			// bucket, issued with the most information.
-			x := &a.learnX[b]
-			a.expand(x, lx, tg.minutes, b)
-			a.learn = append(a.learn, x)
-		}
 		if px.night {
 			continue
 		}
+		// The forecaster learns from the bucket's kept forecast, the one
+		// its calibrators judge: one drawn from those issued for the
+		// interval in the bucket, so that it learns every lead the bucket
+		// serves. (It learned from the latest, the bucket's shortest lead,
+		// until the open data showed the cost: serf-pv-15min's 36h+ bucket
+		// 2.8 points off calibrated, 1.4 with this; GEFCom2014 solar
+		// intraday pinball 0.02131, 0.02079 with this.)
+		x := &a.learnX[b]
+		a.expand(x, px, tg.minutes, b)
+		a.learn = append(a.learn, x)
 		// The PIT of the raw forecast as it would have been published:
 		// clipped to [0, available capacity], so that an outcome at a
 		// bound (no output, full output) ties with the quantiles clipped
@@ -966,7 +962,6 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		b.Steps[i] = model.Step{ValidStart: t, ValidMinutes: step, LeadMinutes: lead}
 		rec, fresh := a.pendingFor(t, step, bucket)
 		px, raw, pub := a.record(rec)
-		lx := a.latest(rec)
 		issued := int32(0)
 		stays := false
 		if !fresh {
@@ -984,7 +979,6 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 			keep(px, x, a.xRun)
 		}
 		px.issued = issued + 1
-		keep(lx, x, a.xRun)
 		row := b.Row(i)
 		// Every calibrator of the bucket is asked, at night too: a
 		// calibrator may note what it issued (conformal.Split does).

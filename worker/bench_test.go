@@ -190,18 +190,19 @@ func playHash(t *testing.T, h hash.Hash, a *Actor, f feed) {
 // (Actor.ownQuantiles), a PV site without a location counts a step as
 // night only where the meter has shown no output at all (Actor.dark), and
 // the raw PIT is taken on the clipped raw quantiles with ties drawn
-// (pitOf), and the default ACI step went from 0.005 to 0.003.
+// (pitOf), the default ACI step went from 0.005 to 0.003, and the
+// forecaster learns from each bucket's kept forecast, not the latest.
 // Any other change of these bytes is a bug.
-const wantFingerprint = "7391039fc29470dc1c3b0dc31fb12599681265483fa7912829ba2ac32e7fbe29"
+const wantFingerprint = "8ce5cbe33a0805c33db145e9ca1088c3b6fa1ef7b25d5eae1a7c1591166456f0"
 
 // wantMoreFingerprint is the SHA-256 of everything moreFingerprintCases
 // give out (the calibrators pid, dtaci and split, and the reference
 // forecasters), recorded like wantFingerprint: first from the code of
 // commit de617d0, again after the reservoir sampling of pending forecasts,
 // and after each calibrator was judged on its own quantile, the raw PIT
-// was taken on clipped quantiles with ties drawn and the default ACI step
-// became 0.003.
-const wantMoreFingerprint = "cb745c82eb2cbfefe30a07a753aae689f3efc0c7444708937be2afd37bda8afa"
+// was taken on clipped quantiles with ties drawn, the default ACI step
+// became 0.003 and the forecaster learned from the kept forecasts.
+const wantMoreFingerprint = "017d7e26d05818cd37194e09c0fa5e9cf18ac4e3a6751c70986e6766f6a4d319"
 
 // TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
 // events, refusals, coverage statistics) over a fixed invented feed is the
@@ -264,9 +265,9 @@ func demoFingerprint(t *testing.T) string {
 // wantDemoFingerprint was recorded like wantFingerprint: from the code of
 // commit de617d0, again after the reservoir sampling of pending forecasts,
 // and after each calibrator was judged on its own quantile, the raw PIT
-// was taken on clipped quantiles with ties drawn and the default ACI step
-// became 0.003.
-const wantDemoFingerprint = "b3cf96446421ee523ba733137854d363652bb99d1208e593306354ec04051b47"
+// was taken on clipped quantiles with ties drawn, the default ACI step
+// became 0.003 and the forecaster learned from the kept forecasts.
+const wantDemoFingerprint = "9baeadbf373e180c27d0f9cd1fb4cbf9347c7875b288a2369aa725df18e3c9e7"
 
 // TestDemoFingerprintUnchanged: replaying the demo fleet gives the same
 // bundles and alarms, byte for byte, as before the performance work.

@@ -5,7 +5,7 @@ package worker
 // each actor and replays the input stream from the snapshot's sequence,
 // and ends in the state a run without the restart would be in.
 //
-// # Layout, format version 2
+// # Layout, format version 3
 //
 // All integers are little-endian; a float is its IEEE 754 bits (NaN
 // payloads and signed zeros kept); a time is its Unix seconds (int64) and
@@ -14,7 +14,7 @@ package worker
 // bytes; a count is a uint32.
 //
 //	magic        "PLSN"
-//	version      uint16, 1
+//	version      uint16, 3
 //	site         the site's id, then its kind (strings)
 //	levels       count, then the quantile levels (floats)
 //	buckets      count, then the lead bucket edges (int64)
@@ -38,9 +38,10 @@ package worker
 //	pending      count of target intervals; each: its start (unix minutes,
 //	             int64), minutes (int64), count of pending forecasts, each:
 //	             its lead bucket (uint32), the features of the forecast kept
-//	             for calibration and of the latest forecast (see below), the
-//	             raw then the published quantiles (floats, one per level
-//	             each; the raw ones of a night forecast, never read, as 0)
+//	             for calibration and learning (see below), the raw
+//	             quantiles then each calibrator's own quantile (floats, one
+//	             per level each; the raw ones of a night forecast, never
+//	             read, as 0)
 //	cells        per lead bucket, per level: the calibrator's state, the
 //	             coverage monitor's state (nested), and the forecasts
 //	             settled, hits and raw hits (int64)
@@ -61,8 +62,11 @@ package worker
 // flag (byte), and the weather row it was made from: 1 + the index of its
 // run in runs (uint32, 0 for none) and the row's index in the run (uint32).
 //
-// Version 1 is version 2 without the held section; it is read as a
-// snapshot with nothing held (written before the reorder window existed).
+// Version 2 is version 3 with, after the features of each pending forecast,
+// those of the latest forecast issued for its interval in its bucket (the
+// forecaster learned from those then); they are read and dropped. Version 1
+// is version 2 without the held section; it is read as a snapshot with
+// nothing held (written before the reorder window existed).
 //
 // Everything is written in a fixed order (no map is walked), so the same
 // state gives the same bytes. Caches and scratch are left out and start
@@ -114,7 +118,7 @@ var (
 
 const (
 	snapshotMagic   = "PLSN"
-	snapshotVersion = 2
+	snapshotVersion = 3
 	// oldestSnapshotVersion is the oldest version this build reads (and
 	// migrates).
 	oldestSnapshotVersion = 1
@@ -207,7 +211,6 @@ func (a *Actor) Snapshot(seq uint64) ([]byte, error) {
 			if rec != noRec {
 				px, _, _ := a.record(rec)
 				refer(px)
-				refer(a.latest(rec))
 			}
 		}
 	}
@@ -245,10 +248,8 @@ func (a *Actor) Snapshot(seq uint64) ([]byte, error) {
 			}
 			w.u32(b)
 			px, raw, pub := a.record(rec)
-			for _, x := range []*pendingX{px, a.latest(rec)} {
-				if err := writePendingX(w, x, index); err != nil {
-					return nil, fmt.Errorf("worker: snapshot %s: %w", a.site.ID, err)
-				}
+			if err := writePendingX(w, px, index); err != nil {
+				return nil, fmt.Errorf("worker: snapshot %s: %w", a.site.ID, err)
 			}
 			if px.night {
 				// Never read (settlement passes night forecasts over) and
@@ -717,7 +718,12 @@ func (a *Actor) readState(r *snapReader, fs model.Snapshotter, version uint16) e
 			tg.rec[b] = rec
 			px, raw, pub := a.record(rec)
 			readPendingX(r, px, table)
-			readPendingX(r, a.latest(rec), table)
+			if version < 3 {
+				// The latest forecast's features, which the forecaster
+				// learned from before version 3: read and dropped.
+				var latest pendingX
+				readPendingX(r, &latest, table)
+			}
 			r.floats(raw)
 			r.floats(pub)
 		}

@@ -9,12 +9,14 @@ import (
 	"hash"
 	"hash/crc32"
 	"math"
+	"os"
 	"slices"
 	"strings"
 	"testing"
 
 	"github.com/plumb-forecast/plumb/conformal"
 	"github.com/plumb-forecast/plumb/model"
+	"github.com/plumb-forecast/plumb/stream"
 )
 
 // input is one input of a feed: a weather run or a reading.
@@ -132,9 +134,6 @@ func strayRuns(a *Actor) int {
 			if rec != noRec {
 				if px, _, _ := a.record(rec); px.run != nil && !kept[px.run] {
 					stray[px.run] = true
-				}
-				if lx := a.latest(rec); lx.run != nil && !kept[lx.run] {
-					stray[lx.run] = true
 				}
 			}
 		}
@@ -639,26 +638,47 @@ func TestSnapshotHasNoSideEffect(t *testing.T) {
 	}
 }
 
-// TestSnapshotVersion1Migrates: a snapshot of format version 1 (written
-// before the reorder window: no held section) restores as the same state
-// with nothing held, and is written back as version 2.
-func TestSnapshotVersion1Migrates(t *testing.T) {
-	site := testSites()[1]
+// TestSnapshotOldVersionsMigrate: snapshots of format versions 2 and 1
+// restore, and are written back as version 3. testdata/snapshot_v2_pv.bin
+// was written by the code of commit 4fa8b0e (format version 2, which also
+// held the latest forecast's features of each pending forecast) for the
+// pv-test site fed variedFeed(pv-test, 2, 23), baseline forecaster, aci,
+// sequence 77. Its version 1 form (the same bytes without the held
+// section: written before the reorder window) must restore to the same
+// state, with nothing held; the version 3 snapshot of that state restores
+// to itself, and all three give the same next bundle.
+func TestSnapshotOldVersionsMigrate(t *testing.T) {
+	site := testSites()[0]
 	cfg := snapConfig(t, "baseline", conformal.MethodACI)
-	a, err := NewActor(site, cfg)
+	v2, err := os.ReadFile("testdata/snapshot_v2_pv.bin")
 	if err != nil {
 		t.Fatal(err)
 	}
-	for _, x := range inputs(variedFeed(site, 2, 23)) {
-		apply(t, a, x)
+	if v := binary.LittleEndian.Uint16(v2[4:]); v != 2 {
+		t.Fatalf("testdata snapshot of version %d, want 2", v)
 	}
-	v2 := snapshot(t, a, 41)
+	a, seq, err := RestoreActor(site, cfg, v2)
+	if err != nil || seq != 77 {
+		t.Fatalf("version 2 refused: %v (sequence %d)", err, seq)
+	}
+	v3 := snapshot(t, a, 77)
+	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 3 {
+		t.Fatalf("written back as version %d", v)
+	}
+	c, _, err := RestoreActor(site, cfg, v3)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if again := snapshot(t, c, 77); !bytes.Equal(again, v3) {
+		t.Error("the version 3 snapshot of a migrated state does not restore to itself")
+	}
+
 	fstate, err := a.fc.(model.Snapshotter).MarshalBinary()
 	if err != nil {
 		t.Fatal(err)
 	}
-	// Version 1: the same bytes without the held section (a time and a
-	// zero count, 16 bytes) before the forecaster's state.
+	// Version 1: the version 2 bytes without the held section (a time and
+	// a zero count, 16 bytes) before the forecaster's state.
 	at := len(v2) - 4 - (4 + len(fstate)) - 16
 	if n := binary.LittleEndian.Uint32(v2[at+12:]); n != 0 {
 		t.Fatalf("held count %d where 0 was expected: the layout moved", n)
@@ -666,17 +686,32 @@ func TestSnapshotVersion1Migrates(t *testing.T) {
 	v1 := slices.Concat(v2[:at], v2[at+16:len(v2)-4])
 	binary.LittleEndian.PutUint16(v1[4:], 1)
 	v1 = binary.LittleEndian.AppendUint32(v1, crc32.ChecksumIEEE(v1))
-	if seq, err := SnapshotSeq(v1); err != nil || seq != 41 {
+	if seq, err := SnapshotSeq(v1); err != nil || seq != 77 {
 		t.Fatalf("SnapshotSeq of version 1: %d, %v", seq, err)
 	}
 	b, seq, err := RestoreActor(site, cfg, v1)
-	if err != nil || seq != 41 {
+	if err != nil || seq != 77 {
 		t.Fatalf("version 1 refused: %v (sequence %d)", err, seq)
 	}
 	if b.Held() != 0 {
 		t.Errorf("%d inputs held after a version 1 restore", b.Held())
 	}
-	if again := snapshot(t, b, 41); !bytes.Equal(again, v2) {
+	if again := snapshot(t, b, 77); !bytes.Equal(again, v3) {
 		t.Error("a version 1 snapshot restores to another state than the version 2 one")
+	}
+
+	enc := stream.NewBundleEncoder()
+	var want bytes.Buffer
+	if err := enc.Encode(&want, a.Refresh()); err != nil {
+		t.Fatal(err)
+	}
+	for name, x := range map[string]*Actor{"version 1": b, "version 3": c} {
+		var got bytes.Buffer
+		if err := enc.Encode(&got, x.Refresh()); err != nil {
+			t.Fatal(err)
+		}
+		if !bytes.Equal(got.Bytes(), want.Bytes()) {
+			t.Errorf("the %s restore's next bundle differs from the version 2 restore's", name)
+		}
 	}
 }
