@@ -5,173 +5,230 @@ import (
 	"encoding/json"
 	"errors"
 	"flag"
-	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"math"
+	"math/rand/v2"
 	"os"
 	"path/filepath"
 	"reflect"
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/plumb-forecast/plumb/internal/sharedtest"
 )
 
 var update = flag.Bool("update", false, "rewrite the golden files under testdata/golden")
 
-// hover adds outcomes to w for steps steps so that its coverage swings
-// around c by about one outcome either way: misses once it rose above c by
-// half an outcome, hits once it fell below by as much. It calls check after
-// each outcome and returns how often |coverage - target| crossed tol.
-func hover(w *Window, c, target, tol float64, steps int, check func()) (crossings int) {
-	down := w.Coverage() > c
-	wasOff := math.Abs(w.Coverage()-target) > tol
-	half := 0.5 / float64(w.Size())
-	for range steps {
-		switch cov := w.Coverage(); {
-		case cov < c-half:
-			down = false
-		case cov > c+half:
-			down = true
+// outcomesPerDay is a day of 15-minute intervals.
+const outcomesPerDay = 96
+
+// bernoulli adds n outcomes, each a hit with probability p, to a, checking
+// it against target after each; it returns the index (from 0) of the first
+// raise and of the first clear among them, -1 where there was none, and
+// the number of state changes.
+func bernoulli(a *Alarm, rng *rand.Rand, n int, p, target float64) (raise, clear, changes int) {
+	raise, clear = -1, -1
+	for i := range n {
+		a.Add(rng.Float64() < p)
+		if changed, raised := a.Check(target); changed {
+			changes++
+			switch {
+			case raised && raise < 0:
+				raise = i
+			case !raised && clear < 0:
+				clear = i
+			}
 		}
-		w.Add(!down)
-		check()
-		if off := math.Abs(w.Coverage()-target) > tol; off != wasOff {
+	}
+	return raise, clear, changes
+}
+
+// TestAlarmSumsByHand: the recent and longer-run coverages are the means of
+// the hits weighted 2^(-age / half-life), age in outcomes, and the spread
+// the root mean square of their gaps weighted the same way with the longer
+// half-life; computed here directly as sums over the outcomes (the
+// definitions, not the recursions the alarm runs).
+func TestAlarmSumsByHand(t *testing.T) {
+	a, err := NewAlarm(AlarmOptions{Recent: 2, Reference: 8})
+	if err != nil {
+		t.Fatal(err)
+	}
+	hits := []bool{true, true, false, true, false, false, true, true, true, false, true}
+	ewMean := func(x []float64, h float64) float64 {
+		var s, sw float64
+		for k, v := range x {
+			wk := math.Exp2(-float64(len(x)-1-k) / h)
+			s += wk * v
+			sw += wk
+		}
+		return s / sw
+	}
+	var xs, gaps []float64
+	for _, h := range hits {
+		x := 0.0
+		if h {
+			x = 1
+		}
+		xs = append(xs, x)
+		g := ewMean(xs, 2) - ewMean(xs, 8)
+		gaps = append(gaps, g*g)
+		a.Add(h)
+	}
+	rec, long := ewMean(xs, 2), ewMean(xs, 8)
+	spread := math.Sqrt(ewMean(gaps, 8))
+	if !near(a.Recent(), rec, 1e-12) || !near(a.LongRun(), long, 1e-12) || !near(a.Spread(), spread, 1e-12) {
+		t.Errorf("recent %v long-run %v spread %v, want %v %v %v", a.Recent(), a.LongRun(), a.Spread(), rec, long, spread)
+	}
+	a.Check(0.5)
+	e := a.Event("s", 0.5, "0h-1h", time.Unix(0, 0))
+	if !near(e.Z, (rec-0.5)/spread, 1e-12) || e.Reference != 0.5 || e.Window != len(hits) {
+		t.Errorf("event z %v reference %v window %d, want %v 0.5 %d", e.Z, e.Reference, e.Window, (rec-0.5)/spread, len(hits))
+	}
+}
+
+// TestAlarmQuietOnTargetRaisesOnChange: a 0.9 quantile covering 90 % of
+// independent outcomes raises nothing over 20 000 of them (the recent
+// coverage's spread is about 0.018, so the default 0.1 and 5 spreads are
+// some 5.5 standard deviations away); when it starts covering 70 % it is
+// raised within a few half-lives, and once back at 90 % it clears, once
+// each.
+func TestAlarmQuietOnTargetRaisesOnChange(t *testing.T) {
+	a, _ := NewAlarm(AlarmOptions{})
+	rng := rand.New(rand.NewPCG(1, 2))
+	if r, _, n := bernoulli(a, rng, 20000, 0.9, 0.9); n != 0 {
+		t.Fatalf("on target: %d changes, the first raise after %d outcomes", n, r)
+	}
+	r, _, n := bernoulli(a, rng, 2000, 0.7, 0.9)
+	if r < 0 || r > 3*outcomesPerDay || n != 1 {
+		t.Fatalf("coverage 0.7: raised after %d outcomes, %d changes; want one raise within three days (%d)", r, n, 3*outcomesPerDay)
+	}
+	t.Logf("coverage 0.9 -> 0.7: raised after %d outcomes (15-minute intervals)", r)
+	_, c, n := bernoulli(a, rng, 2000, 0.9, 0.9)
+	if c < 0 || n != 1 {
+		t.Fatalf("back at 0.9: cleared after %d outcomes, %d changes; want one clear", c, n)
+	}
+}
+
+// TestAlarmDiscountsWeatherSpells: outcomes of one site come in spells (a
+// cloudy week misses the upper quantiles for days on end). A 0.9 quantile
+// whose coverage alternates between spells of 0.6 and 1.0 (a quarter and
+// three quarters of the time, 0.9 on average) moves its recent coverage by
+// 0.3 routinely: that is its usual spread, and no alarm is raised over
+// 40 000 outcomes. The same 0.3 drop in a steady quantile raises at once
+// (TestAlarmQuietOnTargetRaisesOnChange), and without the spread condition
+// (Z tiny) the spells raise many times, which shows the test can fail.
+func TestAlarmDiscountsWeatherSpells(t *testing.T) {
+	spells := func(a *Alarm) (changes int) {
+		rng := rand.New(rand.NewPCG(3, 4))
+		for range 40000 / 200 {
+			p := 1.0
+			if rng.Float64() < 0.25 {
+				p = 0.6
+			}
+			_, _, n := bernoulli(a, rng, 200, p, 0.9)
+			changes += n
+		}
+		return changes
+	}
+	a, _ := NewAlarm(AlarmOptions{})
+	if n := spells(a); n != 0 {
+		t.Errorf("weather spells raised or cleared the alarm %d times (spread %.3f)", n, a.Spread())
+	}
+	b, _ := NewAlarm(AlarmOptions{Z: 1e-9})
+	if n := spells(b); n < 10 {
+		t.Errorf("without the spread condition only %d changes: the spells are too tame to test it", n)
+	}
+}
+
+// TestRawDriftIgnoresStandingBias: a raw quantile at level 0.25 that always
+// covers 12 % (a standing bias the calibrator corrected long ago) never
+// raises raw_drift, where a test against the level would; when it moves to
+// 50 % it is raised, and it clears once its own history has caught up.
+func TestRawDriftIgnoresStandingBias(t *testing.T) {
+	a, _ := NewAlarm(AlarmOptions{Kind: KindRawDrift})
+	rng := rand.New(rand.NewPCG(5, 6))
+	if _, _, n := bernoulli(a, rng, 20000, 0.12, 0.25); n != 0 {
+		t.Fatalf("standing bias: %d changes", n)
+	}
+	vsTarget, _ := NewAlarm(AlarmOptions{})
+	if r, _, _ := bernoulli(vsTarget, rand.New(rand.NewPCG(5, 6)), 20000, 0.12, 0.25); r < 0 {
+		t.Fatal("against the target the standing bias raises nothing either: the bias is too small to test")
+	}
+	r, c, n := bernoulli(a, rng, 20000, 0.5, 0.25)
+	if r < 0 || r > 3*outcomesPerDay || c < r || n != 2 {
+		t.Fatalf("0.12 -> 0.5: raised after %d, cleared after %d outcomes, %d changes", r, c, n)
+	}
+	t.Logf("raw coverage 0.12 -> 0.5: raised after %d outcomes, cleared after %d as the history caught up", r, c)
+	e := a.Event("pv-test", 0.25, "4h-8h", time.Unix(0, 0))
+	if e.Kind != KindRawDrift || !strings.Contains(e.Reason, "its own history") {
+		t.Errorf("event %+v", e)
+	}
+}
+
+// hover steers the recent coverage of a to hover at c (a hit when it is
+// below c, a miss otherwise) for n outcomes, checking against target after
+// each, and returns the state changes and how often |recent - target|
+// crossed tol.
+func hover(a *Alarm, c, target, tol float64, n int) (changes, crossings int) {
+	wasOff := math.Abs(a.Recent()-target) >= tol
+	for range n {
+		a.Add(a.Recent() < c)
+		if changed, _ := a.Check(target); changed {
+			changes++
+		}
+		if off := math.Abs(a.Recent()-target) >= tol; off != wasOff {
 			crossings++
 			wasOff = off
 		}
 	}
-	return crossings
+	return changes, crossings
 }
 
-// TestCoverageAlarmDoesNotFlap drives the calibrated coverage of a 0.9
-// quantile to hover at the raise threshold (0.85), then at the clear
-// threshold (0.875), then at the raise threshold again: the alarm must
-// change state once per phase although the coverage crosses each threshold
-// many times. Without the hysteresis band (ClearTolerance = Tolerance) the
-// same sequence makes it flap, which shows the sequence is a real test.
-func TestCoverageAlarmDoesNotFlap(t *testing.T) {
-	phases := []struct {
-		name      string
-		hoverAt   float64
-		threshold float64
-		want      bool // the state after the phase's one change
-	}{
-		{"at the raise threshold", 0.85, 0.05, true},
-		{"at the clear threshold", 0.875, 0.025, false},
-		{"at the raise threshold again", 0.85, 0.05, true},
-	}
-	// Tolerance 0.05, clear 0.025, 96 samples; the significance test is off
-	// (PValue 1) because the hovering sequence is built of long runs, which
-	// the test discounts as strongly autocorrelated: here only the
-	// hysteresis is under test.
-	a, err := NewCoverageAlarm(AlarmOptions{PValue: 1})
-	if err != nil {
-		t.Fatal(err)
-	}
-	w := NewWindow(400)
-	for i := range 400 {
-		w.Add(i%10 != 0) // on target
-	}
-	var changes []bool
-	check := func() {
-		if changed, raised := a.Check(w, 0.9); changed {
-			changes = append(changes, raised)
+// TestAlarmDoesNotFlap drives the recent coverage of a 0.9 quantile to
+// hover at the raise threshold (0.8), then at the clear threshold (0.85),
+// then at the raise threshold again: the alarm changes state once per
+// phase although the coverage crosses each threshold many times. Without
+// the hysteresis (ClearTolerance = Tolerance) the same sequence flaps.
+// Z is tiny so that only the tolerances decide.
+func TestAlarmDoesNotFlap(t *testing.T) {
+	run := func(o AlarmOptions) (changes []int, crossings int) {
+		a, _ := NewAlarm(o)
+		hover(a, 0.9, 0.9, 0.1, 2000)
+		for _, c := range []float64{0.8, 0.85, 0.8} {
+			n, x := hover(a, c, 0.9, 0.1, 3000)
+			changes = append(changes, n)
+			crossings += x
 		}
+		return changes, crossings
 	}
-	for _, p := range phases {
-		changes = nil
-		hover(w, p.hoverAt, 0.9, p.threshold, 2000, check) // approach
-		if n := hover(w, p.hoverAt, 0.9, p.threshold, 8000, check); n < 30 {
-			t.Fatalf("%s: the coverage crossed the threshold only %d times; the test does not hover", p.name, n)
-		}
-		if len(changes) != 1 || changes[0] != p.want {
-			t.Errorf("%s: state changes %v, want exactly one to raised=%v", p.name, changes, p.want)
-		}
+	changes, crossings := run(AlarmOptions{Z: 1e-9})
+	if !reflect.DeepEqual(changes, []int{1, 1, 1}) {
+		t.Errorf("changes per phase %v, want [1 1 1]", changes)
 	}
-
-	// The control: no hysteresis band.
-	flappy, err := NewCoverageAlarm(AlarmOptions{Tolerance: 0.05, ClearTolerance: 0.05, PValue: 1})
-	if err != nil {
-		t.Fatal(err)
+	if crossings < 50 {
+		t.Errorf("the coverage crossed the raise threshold only %d times; the sequence is too tame", crossings)
 	}
-	w.Reset()
-	n := 0
-	hover(w, 0.85, 0.9, 0.05, 8000, func() {
-		if changed, _ := flappy.Check(w, 0.9); changed {
-			n++
-		}
-	})
-	if n < 10 {
-		t.Errorf("without hysteresis the alarm changed state only %d times; the hovering sequence is too tame", n)
+	flap, _ := run(AlarmOptions{Z: 1e-9, ClearTolerance: 0.1})
+	if flap[0] < 10 {
+		t.Errorf("without hysteresis %v changes per phase; the hovering sequence is too tame", flap)
 	}
 }
 
-func TestCoverageAlarmNeedsEvidence(t *testing.T) {
-	cases := []struct {
-		name       string
-		opt        AlarmOptions
-		size, hits int
-		want       bool
-	}{
-		{"off target and significant", AlarmOptions{}, 200, 160, true},
-		{"off target but too few samples", AlarmOptions{}, 95, 50, false},
-		{"off target, enough samples, not significant", AlarmOptions{MinSamples: 20}, 30, 24, false},
-		{"same, significance not required", AlarmOptions{MinSamples: 20, PValue: 1}, 30, 24, true},
-		{"within tolerance", AlarmOptions{}, 1000, 870, false},
-		{"exactly at the tolerance, significant", AlarmOptions{}, 400, 340, false},
-		{"one outcome beyond the tolerance", AlarmOptions{}, 400, 339, true},
-		{"above target counts too", AlarmOptions{Tolerance: 0.02, MinSamples: 10}, 500, 499, true},
-	}
-	for _, c := range cases {
-		t.Run(c.name, func(t *testing.T) {
-			a, err := NewCoverageAlarm(c.opt)
-			if err != nil {
-				t.Fatal(err)
-			}
-			w := NewWindow(c.size)
-			addSpread(w, c.size, c.hits)
-			changed, raised := a.Check(w, 0.9)
-			if raised != c.want || changed != c.want {
-				_, p := Kupiec(c.size-c.hits, c.size, 0.1)
-				t.Errorf("Check = (%v, %v), want raised %v (coverage %v, Kupiec p %v)", changed, raised, c.want, w.Coverage(), p)
-			}
-		})
-	}
-}
-
-// addSpread adds n outcomes to w with hits spread as evenly as possible (no
-// runs, so no positive autocorrelation to discount).
-func addSpread(w *Window, n, hits int) {
-	for i := range n {
-		w.Add((i+1)*hits/n > i*hits/n)
-	}
-}
-
-// TestCoverageAlarmDiscountsRuns: the same coverage, 0.8 for a 0.9 quantile
-// over 200 outcomes, is significant when the misses are spread out and not
-// when they come in two blocks (what two bad weather days give: two pieces
-// of evidence, not forty).
-func TestCoverageAlarmDiscountsRuns(t *testing.T) {
-	spread, block := NewWindow(200), NewWindow(200)
-	addSpread(spread, 200, 160)
-	for i := range 200 {
-		block.Add(!(i >= 30 && i < 50 || i >= 130 && i < 150))
-	}
-	a, _ := NewCoverageAlarm(AlarmOptions{})
-	if _, raised := a.Check(spread, 0.9); !raised {
-		t.Fatal("spread misses: not raised")
-	}
-	b, _ := NewCoverageAlarm(AlarmOptions{})
-	if _, raised := b.Check(block, 0.9); raised {
-		t.Fatal("one block of misses: raised")
+// TestAlarmMinSamples: no change of state before MinSamples outcomes.
+func TestAlarmMinSamples(t *testing.T) {
+	a, _ := NewAlarm(AlarmOptions{MinSamples: 500, Z: 1e-9})
+	rng := rand.New(rand.NewPCG(7, 8))
+	if r, _, _ := bernoulli(a, rng, 1000, 0.3, 0.9); r != 499 {
+		t.Errorf("raised at outcome %d, want 499 (the 500th)", r)
 	}
 }
 
 func TestAlarmOptions(t *testing.T) {
-	a, err := NewCoverageAlarm(AlarmOptions{})
+	a, err := NewAlarm(AlarmOptions{})
 	if err != nil {
 		t.Fatal(err)
 	}
-	want := AlarmOptions{Tolerance: 0.05, ClearTolerance: 0.025, PValue: 0.01, MinSamples: 96, Batches: 8, Kind: KindCoverage}
+	want := AlarmOptions{Tolerance: 0.1, ClearTolerance: 0.05, Z: 5, Recent: 96, Reference: 2688, MinSamples: 672, Kind: KindCoverage}
 	if a.Options() != want {
 		t.Errorf("defaults %+v, want %+v", a.Options(), want)
 	}
@@ -183,14 +240,18 @@ func TestAlarmOptions(t *testing.T) {
 		{"tolerance 1", AlarmOptions{Tolerance: 1}},
 		{"clear beyond raise", AlarmOptions{Tolerance: 0.05, ClearTolerance: 0.06}},
 		{"negative clear", AlarmOptions{ClearTolerance: -0.01}},
-		{"p-value above 1", AlarmOptions{PValue: 1.5}},
-		{"NaN p-value", AlarmOptions{PValue: math.NaN()}},
+		{"negative z", AlarmOptions{Z: -1}},
+		{"NaN z", AlarmOptions{Z: math.NaN()}},
+		{"recent below 1", AlarmOptions{Recent: 0.5}},
+		{"NaN recent", AlarmOptions{Recent: math.NaN()}},
+		{"reference not beyond recent", AlarmOptions{Recent: 100, Reference: 100}},
+		{"infinite reference", AlarmOptions{Reference: math.Inf(1)}},
 		{"negative min samples", AlarmOptions{MinSamples: -1}},
-		{"one batch", AlarmOptions{Batches: 1}},
+		{"unknown kind", AlarmOptions{Kind: "stale"}},
 	}
 	for _, c := range bad {
 		t.Run(c.name, func(t *testing.T) {
-			if _, err := NewCoverageAlarm(c.opt); err == nil || !strings.HasPrefix(err.Error(), "conformal: alarm") {
+			if _, err := NewAlarm(c.opt); err == nil || !strings.HasPrefix(err.Error(), "conformal: alarm") {
 				t.Errorf("err = %v, want a conformal: alarm error", err)
 			}
 		})
@@ -198,22 +259,32 @@ func TestAlarmOptions(t *testing.T) {
 }
 
 // raisedEvent is the alarm event the golden file holds: the 0.9 quantile of
-// an invented site covered 560 of its last 672 outcomes.
+// an invented site covered nine outcomes in ten, evenly, for 2000 outcomes,
+// then two in three until the alarm was raised.
 func raisedEvent(t *testing.T) Event {
 	t.Helper()
-	a, err := NewCoverageAlarm(AlarmOptions{})
+	a, err := NewAlarm(AlarmOptions{})
 	if err != nil {
 		t.Fatal(err)
 	}
-	w := NewWindow(672)
-	for i := range 672 {
-		w.Add(i%6 != 0) // 112 misses
+	for i := range 2000 {
+		a.Add(i%10 != 0)
+		if changed, _ := a.Check(0.9); changed {
+			t.Fatalf("outcome %d: the alarm changed on target", i)
+		}
 	}
-	if changed, raised := a.Check(w, 0.9); !changed || !raised {
-		t.Fatalf("Check = (%v, %v), want a raise", changed, raised)
+	for i := range 1000 {
+		a.Add(i%3 != 0)
+		if changed, raised := a.Check(0.9); changed {
+			if !raised {
+				t.Fatal("the alarm cleared")
+			}
+			at := time.Date(2024, 3, 14, 9, 15, 0, 0, time.FixedZone("UTC+1", 3600))
+			return a.Event("demo-wind-01", 0.9, "4h-8h", at)
+		}
 	}
-	at := time.Date(2024, 3, 14, 9, 15, 0, 0, time.FixedZone("UTC+1", 3600))
-	return a.Event("demo-wind-01", 0.9, "4h-8h", at)
+	t.Fatal("coverage 2/3 never raised the alarm")
+	return Event{}
 }
 
 // TestAlarmEventGolden pins the JSON of a raised coverage alarm, a wire
@@ -244,19 +315,14 @@ func TestAlarmEventGolden(t *testing.T) {
 
 func TestAlarmEventContents(t *testing.T) {
 	e := raisedEvent(t)
-	if e.State != StateRaised || e.Kind != KindCoverage || e.Window != 672 || e.Target != 0.9 || e.Level != 0.9 {
+	if e.State != StateRaised || e.Kind != KindCoverage || e.Target != 0.9 || e.Level != 0.9 || e.Reference != 0.9 || e.Window <= 2000 {
 		t.Errorf("event %+v", e)
 	}
-	if !near(e.Observed, 560.0/672, 1e-15) {
-		t.Errorf("observed %v, want %v", e.Observed, 560.0/672)
+	if !(e.Observed <= 0.8+1e-12) || !(e.Z <= -5) {
+		t.Errorf("observed %v, z %v: want at most 0.8 and -5", e.Observed, e.Z)
 	}
-	// The misses are spread evenly, so the batches vary less than
-	// independent outcomes would and the test is the binomial z-test:
-	// z = (0.9 - 560/672) / sqrt(0.9 x 0.1 / 672), p = erfc(z / sqrt 2)
-	// (two-sided normal tail, computed).
-	z := (0.9 - 560.0/672) / math.Sqrt(0.9*0.1/672)
-	if p := math.Erfc(z / math.Sqrt2); !near(e.PValue, p, 1e-6*p) || !(p < 0.01) {
-		t.Errorf("p-value %v, want the z-test's %v below 0.01", e.PValue, p)
+	if p := math.Erfc(math.Abs(e.Z) / math.Sqrt2); e.PValue != p {
+		t.Errorf("p-value %v, want the normal tail of z %v", e.PValue, p)
 	}
 	if want := time.Date(2024, 3, 14, 8, 15, 0, 0, time.UTC); !e.EventTime.Equal(want) || e.EventTime.Location() != time.UTC {
 		t.Errorf("event time %v, want %v in UTC", e.EventTime, want)
@@ -273,20 +339,23 @@ func TestAlarmEventContents(t *testing.T) {
 	if err := json.Unmarshal(b, &fields); err != nil {
 		t.Fatal(err)
 	}
-	for _, k := range []string{"site", "kind", "state", "level", "lead_bucket", "target", "observed", "window", "p_value", "event_time", "reason"} {
+	for _, k := range []string{"site", "kind", "state", "level", "lead_bucket", "target", "observed", "reference", "z", "window", "p_value", "event_time", "reason"} {
 		if _, ok := fields[k]; !ok {
 			t.Errorf("JSON lacks %q: %s", k, b)
 		}
 	}
 }
 
-func TestCoverageAlarmStateRoundTrip(t *testing.T) {
-	a, _ := NewCoverageAlarm(AlarmOptions{MinSamples: 10})
-	w := NewWindow(50)
-	addSpread(w, 50, 10)
-	a.Check(w, 0.5)
+func TestAlarmStateRoundTrip(t *testing.T) {
+	o := AlarmOptions{MinSamples: 10, Z: 1e-9}
+	a, _ := NewAlarm(o)
+	rng := rand.New(rand.NewPCG(11, 12))
+	bernoulli(a, rng, 50, 0.2, 0.5)
+	if !a.Raised() {
+		t.Fatal("not raised")
+	}
 	b, _ := a.MarshalBinary()
-	r, _ := NewCoverageAlarm(AlarmOptions{MinSamples: 10})
+	r, _ := NewAlarm(o)
 	if err := r.UnmarshalBinary(b); err != nil {
 		t.Fatal(err)
 	}
@@ -294,20 +363,53 @@ func TestCoverageAlarmStateRoundTrip(t *testing.T) {
 	if !reflect.DeepEqual(r.Event("s", 0.5, "0h-1h", at), a.Event("s", 0.5, "0h-1h", at)) || !r.Raised() {
 		t.Errorf("restored %+v, want %+v", *r, *a)
 	}
-	for _, bad := range [][]byte{nil, append([]byte{7}, b[1:]...), b[:20], append([]byte{1, 2}, b[2:]...)} {
+	seed := rng.Uint64()
+	_, c1, n1 := bernoulli(a, rand.New(rand.NewPCG(seed, 1)), 300, 0.5, 0.5)
+	_, c2, n2 := bernoulli(r, rand.New(rand.NewPCG(seed, 1)), 300, 0.5, 0.5)
+	b1, _ := a.MarshalBinary()
+	b2, _ := r.MarshalBinary()
+	if c1 != c2 || n1 != n2 || !bytes.Equal(b1, b2) {
+		t.Errorf("after the same outcomes: clears %d/%d, changes %d/%d, states equal %v", c1, c2, n1, n2, bytes.Equal(b1, b2))
+	}
+	old := append([]byte{1}, make([]byte, 33)...) // a version 1 (window-based) state
+	for _, bad := range [][]byte{nil, old, append([]byte{7}, b[1:]...), b[:20], append([]byte{2, 2}, b[2:]...), append(bytes.Clone(b), 0)} {
 		if err := r.UnmarshalBinary(bad); !errors.Is(err, ErrState) {
 			t.Errorf("UnmarshalBinary(% x) = %v, want ErrState", bad, err)
 		}
 	}
 }
 
+// FuzzAlarmUnmarshal: the decoder must not panic, and a state it accepts
+// must encode back to the same bytes.
+func FuzzAlarmUnmarshal(f *testing.F) {
+	a, _ := NewAlarm(AlarmOptions{})
+	for i := range 30 {
+		a.Add(i%3 == 0)
+	}
+	good, _ := a.MarshalBinary()
+	f.Add(good)
+	f.Add([]byte{2, 0})
+	f.Fuzz(func(t *testing.T, data []byte) {
+		b, _ := NewAlarm(AlarmOptions{})
+		if err := b.UnmarshalBinary(data); err != nil {
+			return
+		}
+		again, _ := b.MarshalBinary()
+		if !bytes.Equal(again, data) {
+			t.Fatalf("re-encoded % x, read % x", again, data)
+		}
+		b.Add(true)
+		b.Check(0.5)
+	})
+}
+
 // TestEventBeforeAnyCheck: an alarm that has seen no outcome still yields an
 // event JSON can encode (no NaN).
 func TestEventBeforeAnyCheck(t *testing.T) {
-	a, _ := NewCoverageAlarm(AlarmOptions{})
-	a.Check(NewWindow(5), 0.9) // an empty window changes nothing
+	a, _ := NewAlarm(AlarmOptions{})
+	a.Check(0.9) // no outcome: nothing changes
 	e := a.Event("demo-pv-01", 0.9, "", time.Date(2024, 1, 1, 0, 0, 0, 0, time.UTC))
-	if e.State != StateCleared || e.Window != 0 {
+	if e.State != StateCleared || e.Window != 0 || e.PValue != 0 {
 		t.Errorf("event %+v", e)
 	}
 	if _, err := json.Marshal(e); err != nil {

@@ -24,11 +24,11 @@ type MonitorOptions struct {
 	// coverages. Zero means 96 (a day of 15-minute intervals); it must be
 	// positive and finite otherwise.
 	HalfLife float64
-	// Alarm configures the coverage alarm on the calibrated forecast.
+	// Alarm configures the coverage alarm on the calibrated forecast; its
+	// Kind is always KindCoverage.
 	Alarm AlarmOptions
 	// RawAlarm configures the raw-drift alarm on the raw model's coverage;
-	// its zero Tolerance means 0.1 (a raw model that far off keeps the
-	// calibrator working hard) and its Kind is always KindRawDrift.
+	// its Kind is always KindRawDrift.
 	RawAlarm AlarmOptions
 }
 
@@ -47,10 +47,11 @@ type Monitor struct {
 	Calibrated, Raw *Window
 	// CalibratedEW and RawEW are their exponentially weighted coverages.
 	CalibratedEW, RawEW *EWCoverage
-	// Alarm watches the calibrated coverage.
-	Alarm *CoverageAlarm
-	// RawAlarm watches the raw model's coverage (kind KindRawDrift).
-	RawAlarm *CoverageAlarm
+	// Alarm watches the calibrated coverage against the level.
+	Alarm *Alarm
+	// RawAlarm watches the raw model's coverage against its own history
+	// (kind KindRawDrift).
+	RawAlarm *Alarm
 }
 
 // NewMonitor returns an empty monitor of a level in (0, 1), or an error for
@@ -71,19 +72,15 @@ func NewMonitor(level float64, o MonitorOptions) (*Monitor, error) {
 	if !(o.HalfLife > 0) || math.IsInf(o.HalfLife, 0) {
 		return nil, fmt.Errorf("conformal: monitor half-life %v is not positive and finite", o.HalfLife)
 	}
-	alarm, err := NewCoverageAlarm(o.Alarm)
+	co := o.Alarm
+	co.Kind = KindCoverage
+	alarm, err := NewAlarm(co)
 	if err != nil {
 		return nil, err
 	}
 	ro := o.RawAlarm
 	ro.Kind = KindRawDrift
-	if ro.Tolerance == 0 {
-		ro.Tolerance = 0.1
-	}
-	if ro.MinSamples == 0 {
-		ro.MinSamples = o.Alarm.MinSamples
-	}
-	rawAlarm, err := NewCoverageAlarm(ro)
+	rawAlarm, err := NewAlarm(ro)
 	if err != nil {
 		return nil, err
 	}
@@ -116,21 +113,22 @@ func (m *Monitor) Observe(o Outcome) {
 func (m *Monitor) Record(hit, rawKnown, rawHit bool) {
 	m.Calibrated.Add(hit)
 	m.CalibratedEW.Add(hit)
+	m.Alarm.Add(hit)
 	if rawKnown {
 		m.Raw.Add(rawHit)
 		m.RawEW.Add(rawHit)
+		m.RawAlarm.Add(rawHit)
 	}
 }
 
-// Check runs the alarm on the calibrated window against Level; see
-// CoverageAlarm.Check.
+// Check runs the coverage alarm against Level; see Alarm.Check.
 func (m *Monitor) Check() (changed, raised bool) {
-	return m.Alarm.Check(m.Calibrated, m.Level)
+	return m.Alarm.Check(m.Level)
 }
 
-// CheckRaw runs the raw-drift alarm on the raw window against Level.
+// CheckRaw runs the raw-drift alarm.
 func (m *Monitor) CheckRaw() (changed, raised bool) {
-	return m.RawAlarm.Check(m.Raw, m.Level)
+	return m.RawAlarm.Check(m.Level)
 }
 
 // RawEvent is the raw-drift alarm's payload for this monitor's level.
@@ -138,18 +136,22 @@ func (m *Monitor) RawEvent(site, leadBucket string, at time.Time) Event {
 	return m.RawAlarm.Event(site, m.Level, leadBucket, at)
 }
 
-// Event is the alarm's payload for this monitor's level; see
-// CoverageAlarm.Event.
+// Event is the alarm's payload for this monitor's level; see Alarm.Event.
 func (m *Monitor) Event(site, leadBucket string, at time.Time) Event {
 	return m.Alarm.Event(site, m.Level, leadBucket, at)
 }
 
-// MarshalBinary encodes the monitor's state: a version byte (1), the level
+// monitorVersion is the version byte of a Monitor's state. Version 1 held
+// the window-based alarms this build's replaced; it is still read (see
+// UnmarshalBinary).
+const monitorVersion = 2
+
+// MarshalBinary encodes the monitor's state: a version byte (2), the level
 // as a little-endian double, then the states of Calibrated, Raw,
 // CalibratedEW, RawEW, Alarm and RawAlarm, each preceded by its length as a
 // little-endian uint32.
 func (m *Monitor) MarshalBinary() ([]byte, error) {
-	b := append(make([]byte, 0, 64), stateVersion)
+	b := append(make([]byte, 0, 64), monitorVersion)
 	b = appendFloat(b, m.Level)
 	for _, p := range []encoding.BinaryMarshaler{m.Calibrated, m.Raw, m.CalibratedEW, m.RawEW, m.Alarm, m.RawAlarm} {
 		s, err := p.MarshalBinary()
@@ -164,14 +166,21 @@ func (m *Monitor) MarshalBinary() ([]byte, error) {
 
 // UnmarshalBinary restores a state written by MarshalBinary into a monitor
 // built by NewMonitor: the level, the windows and EW coverages (their sizes
-// and half-lives included) and the alarm's state; the alarm's options stay
-// those the monitor was built with. It refuses a bad state with an error
-// wrapping ErrState and leaves m unchanged then.
+// and half-lives included) and the alarms' states; the alarms' options stay
+// those the monitor was built with. A version 1 state (written before the
+// alarms were exponentially weighted charts) restores the level, windows
+// and EW coverages and leaves both alarms new and cleared: they judge again
+// once they have seen MinSamples outcomes. It refuses a bad state with an
+// error wrapping ErrState and leaves m unchanged then.
 func (m *Monitor) UnmarshalBinary(data []byte) error {
-	r, err := newStateReader("monitor", data, 0)
-	if err != nil {
-		return err
+	if len(data) == 0 {
+		return fmt.Errorf("%w: monitor: empty", ErrState)
 	}
+	version := data[0]
+	if version != 1 && version != monitorVersion {
+		return fmt.Errorf("%w: monitor: unknown version %d (this build reads versions 1 and %d)", ErrState, version, monitorVersion)
+	}
+	r := &stateReader{b: data[1:]}
 	if len(r.b) < 8 {
 		return fmt.Errorf("%w: monitor: %d bytes, too short", ErrState, len(data))
 	}
@@ -179,20 +188,28 @@ func (m *Monitor) UnmarshalBinary(data []byte) error {
 	if checkLevel(level) != nil {
 		return fmt.Errorf("%w: monitor: level %v is outside (0, 1)", ErrState, level)
 	}
-	alarm, rawAlarm := &CoverageAlarm{}, &CoverageAlarm{}
-	if m.Alarm != nil {
-		alarm.opt = m.Alarm.opt
-	} else if alarm.opt, err = (AlarmOptions{}).resolve(); err != nil {
+	opt := func(a *Alarm, kind string) (*Alarm, error) {
+		o := AlarmOptions{Kind: kind}
+		if a != nil {
+			o = a.opt
+		}
+		return NewAlarm(o)
+	}
+	alarm, err := opt(m.Alarm, KindCoverage)
+	if err != nil {
 		return err
 	}
-	if m.RawAlarm != nil {
-		rawAlarm.opt = m.RawAlarm.opt
-	} else if rawAlarm.opt, err = (AlarmOptions{Tolerance: 0.1, Kind: KindRawDrift}).resolve(); err != nil {
+	rawAlarm, err := opt(m.RawAlarm, KindRawDrift)
+	if err != nil {
 		return err
 	}
 	next := Monitor{Level: level, Calibrated: &Window{}, Raw: &Window{},
 		CalibratedEW: &EWCoverage{}, RawEW: &EWCoverage{}, Alarm: alarm, RawAlarm: rawAlarm}
-	for _, p := range []encoding.BinaryUnmarshaler{next.Calibrated, next.Raw, next.CalibratedEW, next.RawEW, next.Alarm, next.RawAlarm} {
+	parts := []encoding.BinaryUnmarshaler{next.Calibrated, next.Raw, next.CalibratedEW, next.RawEW, next.Alarm, next.RawAlarm}
+	if version == 1 {
+		parts[4], parts[5] = skipState{}, skipState{}
+	}
+	for _, p := range parts {
 		if len(r.b) < 4 {
 			return fmt.Errorf("%w: monitor: truncated", ErrState)
 		}
@@ -210,5 +227,16 @@ func (m *Monitor) UnmarshalBinary(data []byte) error {
 		return fmt.Errorf("%w: monitor: %d trailing bytes", ErrState, len(r.b))
 	}
 	*m = next
+	return nil
+}
+
+// skipState reads a version 1 window-based alarm's state (a version byte
+// 1, then 33 bytes) and drops it.
+type skipState struct{}
+
+func (skipState) UnmarshalBinary(b []byte) error {
+	if len(b) != 34 || b[0] != 1 {
+		return fmt.Errorf("%w: monitor: version 1 alarm state of %d bytes, want 34", ErrState, len(b))
+	}
 	return nil
 }

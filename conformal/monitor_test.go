@@ -83,7 +83,8 @@ func TestNewMonitorErrors(t *testing.T) {
 		{"level 1", 1, MonitorOptions{}},
 		{"negative window", 0.5, MonitorOptions{Window: -1}},
 		{"negative half-life", 0.5, MonitorOptions{HalfLife: -3}},
-		{"bad alarm", 0.5, MonitorOptions{Alarm: AlarmOptions{PValue: 2}}},
+		{"bad alarm", 0.5, MonitorOptions{Alarm: AlarmOptions{Z: -2}}},
+		{"bad raw alarm", 0.5, MonitorOptions{RawAlarm: AlarmOptions{Tolerance: 2}}},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -105,8 +106,8 @@ func TestMonitorStateRoundTrip(t *testing.T) {
 	opt := MonitorOptions{Window: 100, HalfLife: 10, Alarm: AlarmOptions{MinSamples: 20}}
 	m, _ := NewMonitor(0.8, opt)
 	rng := rand.New(rand.NewPCG(9, 9))
-	feed := func(m *Monitor, n int, r *rand.Rand) (changes int) {
-		for range n {
+	feed := func(m *Monitor, from, n int, r *rand.Rand) (changes int) {
+		for k := from; k < from+n; k++ {
 			y := r.NormFloat64()
 			m.Observe(Outcome{Y: y, Issued: 0.3, PIT: r.Float64()})
 			if changed, _ := m.Check(); changed {
@@ -115,7 +116,7 @@ func TestMonitorStateRoundTrip(t *testing.T) {
 		}
 		return changes
 	}
-	feed(m, 150, rng)
+	feed(m, 0, 150, rng)
 	b, err := m.MarshalBinary()
 	if err != nil {
 		t.Fatal(err)
@@ -129,8 +130,8 @@ func TestMonitorStateRoundTrip(t *testing.T) {
 		t.Fatal("the restored monitor encodes differently")
 	}
 	seed := rng.Uint64()
-	c1 := feed(m, 500, rand.New(rand.NewPCG(seed, 1)))
-	c2 := feed(r, 500, rand.New(rand.NewPCG(seed, 1)))
+	c1 := feed(m, 150, 500, rand.New(rand.NewPCG(seed, 1)))
+	c2 := feed(r, 150, 500, rand.New(rand.NewPCG(seed, 1)))
 	b1, _ := m.MarshalBinary()
 	b2, _ := r.MarshalBinary()
 	if c1 != c2 || !bytes.Equal(b1, b2) {
@@ -166,25 +167,39 @@ func FuzzMonitorUnmarshal(f *testing.F) {
 }
 
 // TestMonitorRawDrift: a raw model covering a 0.5 level 80 % of the time
-// while the calibrated forecast holds the level raises raw_drift, not
-// coverage_off.
+// for weeks (a standing bias) while the calibrated forecast holds the level
+// raises nothing; when the raw coverage falls to 20 % raw_drift is raised,
+// not coverage_off.
 func TestMonitorRawDrift(t *testing.T) {
 	m, err := NewMonitor(0.5, MonitorOptions{Window: 400})
 	if err != nil {
 		t.Fatal(err)
 	}
-	for i := range 400 {
+	for i := range 4000 {
 		m.Record(i%2 == 0, true, i%5 != 0) // calibrated 50 %, raw 80 %, spread evenly
+		if changed, _ := m.Check(); changed {
+			t.Fatalf("outcome %d: calibrated coverage on target, yet coverage_off changed", i)
+		}
+		if changed, _ := m.CheckRaw(); changed {
+			t.Fatalf("outcome %d: a standing raw bias changed raw_drift", i)
+		}
 	}
-	if changed, raised := m.Check(); changed || raised {
-		t.Fatal("calibrated coverage on target, yet coverage_off raised")
+	raisedAt := -1
+	for i := range 400 {
+		m.Record(i%2 == 0, true, i%5 == 0) // raw 20 %
+		if changed, _ := m.Check(); changed {
+			t.Fatal("coverage_off changed")
+		}
+		if changed, raised := m.CheckRaw(); changed && raised {
+			raisedAt = i
+			break
+		}
 	}
-	changed, raised := m.CheckRaw()
-	if !changed || !raised {
-		t.Fatal("raw coverage 0.8 for level 0.5: raw_drift not raised")
+	if raisedAt < 0 {
+		t.Fatal("raw coverage 0.8 -> 0.2: raw_drift not raised")
 	}
 	e := m.RawEvent("wind-test", "4h-8h", time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC))
-	if e.Kind != KindRawDrift || e.State != StateRaised || e.Observed != 0.8 || !strings.Contains(e.Reason, "raw model") {
+	if e.Kind != KindRawDrift || e.State != StateRaised || !(e.Reference > 0.7) || !(e.Observed < e.Reference-0.1) || !strings.Contains(e.Reason, "raw model") {
 		t.Fatalf("event %+v", e)
 	}
 	// The raw alarm survives a state round trip.
@@ -199,10 +214,52 @@ func TestMonitorRawDrift(t *testing.T) {
 	if !r.RawAlarm.Raised() || r.Alarm.Raised() {
 		t.Fatal("restored monitor lost its alarm states")
 	}
+	raised := false
 	for range 400 {
-		r.Record(true, true, true)
+		r.Record(false, true, false)
+		_, raised = r.Check()
+		if raised {
+			break
+		}
 	}
-	if _, raised := r.Check(); !raised {
-		t.Fatal("a restored monitor cannot run its coverage test")
+	if !raised {
+		t.Fatal("a restored monitor cannot run its coverage alarm")
+	}
+}
+
+// TestMonitorVersion1Migrates: a monitor state of version 1 (written before
+// the alarms were exponentially weighted charts, with two 34-byte
+// window-based alarm states) restores its level, windows and EW coverages,
+// and leaves both alarms new.
+func TestMonitorVersion1Migrates(t *testing.T) {
+	m, _ := NewMonitor(0.9, MonitorOptions{Window: 10, HalfLife: 3})
+	for i := range 25 {
+		m.Record(i%4 != 0, true, i%3 != 0)
+	}
+	v1 := append([]byte{1}, appendFloat(nil, 0.9)...)
+	for _, p := range []interface{ MarshalBinary() ([]byte, error) }{m.Calibrated, m.Raw, m.CalibratedEW, m.RawEW} {
+		s, _ := p.MarshalBinary()
+		v1 = appendUint32(v1, uint32(len(s)))
+		v1 = append(v1, s...)
+	}
+	old := append([]byte{1, 1}, make([]byte, 32)...) // a raised version 1 alarm
+	for range 2 {
+		v1 = appendUint32(v1, uint32(len(old)))
+		v1 = append(v1, old...)
+	}
+	r, _ := NewMonitor(0.5, MonitorOptions{})
+	if err := r.UnmarshalBinary(v1); err != nil {
+		t.Fatal(err)
+	}
+	if r.Level != 0.9 || r.Calibrated.Hits() != m.Calibrated.Hits() || r.Raw.Count() != m.Raw.Count() || *r.RawEW != *m.RawEW {
+		t.Errorf("restored level %v, windows %d/%d", r.Level, r.Calibrated.Hits(), r.Raw.Count())
+	}
+	if r.Alarm.Raised() || r.RawAlarm.Raised() || r.Alarm.Count() != 0 {
+		t.Error("the version 1 alarms were not replaced by new ones")
+	}
+	bad := bytes.Clone(v1)
+	bad[len(bad)-34] = 2 // the old alarm state's version byte
+	if err := r.UnmarshalBinary(bad); !errors.Is(err, ErrState) {
+		t.Errorf("a version 1 state with a bad alarm state: %v, want ErrState", err)
 	}
 }

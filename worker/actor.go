@@ -74,9 +74,10 @@ type Config struct {
 	CoverageWindow int
 	// Calibrator chooses and tunes the online calibrator.
 	Calibrator conformal.Options
-	// Alarm tunes the coverage alarm; MinSamples 0 means half the
-	// CoverageWindow.
-	Alarm conformal.AlarmOptions
+	// Alarm tunes the coverage_off alarm of every (lead bucket, level);
+	// RawAlarm the raw_drift one. The zero values are the defaults of
+	// conformal.AlarmOptions.
+	Alarm, RawAlarm conformal.AlarmOptions
 	// NewForecaster makes a site's forecaster; nil means model.NewBaseline.
 	NewForecaster func(model.Site) model.Forecaster
 }
@@ -100,11 +101,6 @@ func (c Config) WithDefaults() Config {
 	}
 	if c.CoverageWindow <= 0 {
 		c.CoverageWindow = 672
-	}
-	if c.Alarm.MinSamples == 0 {
-		// No judgement before the window is half full: a model warming up
-		// is not a drift.
-		c.Alarm.MinSamples = c.CoverageWindow / 2
 	}
 	if c.NewForecaster == nil {
 		b := c.Buckets
@@ -267,7 +263,7 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 		if err != nil {
 			return nil, fmt.Errorf("worker: site %s: %w", site.ID, err)
 		}
-		mon, err := conformal.NewMonitor(lvl, conformal.MonitorOptions{Window: cfg.CoverageWindow, Alarm: cfg.Alarm})
+		mon, err := conformal.NewMonitor(lvl, conformal.MonitorOptions{Window: cfg.CoverageWindow, Alarm: cfg.Alarm, RawAlarm: cfg.RawAlarm})
 		if err != nil {
 			return nil, fmt.Errorf("worker: site %s: %w", site.ID, err)
 		}
@@ -621,11 +617,32 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 }
 
 func (a *Actor) checkAlarm(c *cell, b, j int, at time.Time) {
-	if changed, _ := c.mon.Check(); changed {
-		a.events = append(a.events, c.mon.Event(a.site.ID, a.cfg.Buckets.Name(b), at))
+	if changed, raised := c.mon.Check(); changed {
+		a.siteAlarm(c.mon.Event(a.site.ID, a.cfg.Buckets.Name(b), at), raised,
+			func(m *conformal.Monitor) bool { return m.Alarm.Raised() })
 	}
-	if changed, _ := c.mon.CheckRaw(); changed {
-		a.events = append(a.events, c.mon.RawEvent(a.site.ID, a.cfg.Buckets.Name(b), at))
+	if changed, raised := c.mon.CheckRaw(); changed {
+		a.siteAlarm(c.mon.RawEvent(a.site.ID, a.cfg.Buckets.Name(b), at), raised,
+			func(m *conformal.Monitor) bool { return m.RawAlarm.Raised() })
+	}
+}
+
+// siteAlarm publishes a (lead bucket, level) alarm's change as the site's
+// alarm of its kind when it is the first raised or the last cleared: one
+// weather spell or one fault moves many lead buckets and levels at once,
+// and a person wants to hear of it once, not a hundred times. up tells
+// whether a cell's alarm of the kind is raised. Changes are rare, so the
+// count over the cells costs nothing that matters.
+func (a *Actor) siteAlarm(e conformal.Event, raised bool, up func(*conformal.Monitor) bool) {
+	n := 0
+	for i := range a.cells {
+		if up(a.cells[i].mon) {
+			n++
+		}
+	}
+	if (raised && n == 1) || (!raised && n == 0) {
+		e.Cells = n
+		a.events = append(a.events, e)
 	}
 }
 

@@ -47,8 +47,9 @@ package worker
 //	             settled, hits and raw hits (int64)
 //	events       count of queued alarm events; each: site, kind, state
 //	             (strings), level (float), lead bucket (string), target,
-//	             observed (floats), window (int64), p-value (float), event
-//	             time (time), reason (string)
+//	             observed (floats), window (int64), p-value, reference,
+//	             z (floats), cells (int64), event time (time), reason
+//	             (string)
 //	held         the reorder window (Config.Reorder): the latest event time
 //	             held or seen (time), count of inputs held; each, in order:
 //	             kind (byte: 1 weather, 2 meter), subject (string), event
@@ -62,7 +63,11 @@ package worker
 // flag (byte), and the weather row it was made from: 1 + the index of its
 // run in runs (uint32, 0 for none) and the row's index in the run (uint32).
 //
-// Version 2 is version 3 with, after the features of each pending forecast,
+// Version 3 is version 4 without the reference, z and cells of the queued
+// events (read as zero). Its coverage monitors are of their own version 1,
+// with window-based alarms: those are replaced by new, cleared alarms
+// (conformal.Monitor.UnmarshalBinary), which judge again once they have
+// seen enough outcomes. Version 2 is version 3 with, after the features of each pending forecast,
 // those of the latest forecast issued for its interval in its bucket (the
 // forecaster learned from those then); they are read and dropped. Version 1
 // is version 2 without the held section; it is read as a snapshot with
@@ -118,7 +123,7 @@ var (
 
 const (
 	snapshotMagic   = "PLSN"
-	snapshotVersion = 3
+	snapshotVersion = 4
 	// oldestSnapshotVersion is the oldest version this build reads (and
 	// migrates).
 	oldestSnapshotVersion = 1
@@ -296,6 +301,9 @@ func (a *Actor) Snapshot(seq uint64) ([]byte, error) {
 		w.f64(e.Observed)
 		w.i64(int64(e.Window))
 		w.f64(e.PValue)
+		w.f64(e.Reference)
+		w.f64(e.Z)
+		w.i64(int64(e.Cells))
 		w.time(e.EventTime)
 		w.str(e.Reason)
 	}
@@ -769,6 +777,10 @@ func (a *Actor) readState(r *snapReader, fs model.Snapshotter, version uint16) e
 		e.Target, e.Observed = r.f64(), r.f64()
 		e.Window = r.int("event window", 0, math.MaxInt32)
 		e.PValue = r.f64()
+		if version >= 4 {
+			e.Reference, e.Z = r.f64(), r.f64()
+			e.Cells = r.int("event cells", 0, math.MaxInt32)
+		}
 		e.EventTime = r.time()
 		e.Reason = r.str()
 		a.events = append(a.events, e)

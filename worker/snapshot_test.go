@@ -293,7 +293,7 @@ func TestSnapshotDeterministic(t *testing.T) {
 // (not yet collected by Events) are restored with it.
 func TestSnapshotQueuedEvents(t *testing.T) {
 	site := testSites()[1]
-	cfg := Config{CoverageWindow: 96}.WithDefaults()
+	cfg := quickAlarms().WithDefaults()
 	in := inputs(variedFeed(site, 4, 19))
 	a, err := NewActor(site, cfg)
 	if err != nil {
@@ -330,6 +330,16 @@ func TestSnapshotQueuedEvents(t *testing.T) {
 		return
 	}
 	t.Fatal("the feed raised no alarm")
+}
+
+// quickAlarms is a configuration whose alarms judge after a few dozen
+// outcomes with short half-lives and a low spread limit, so that the short
+// invented feeds of the tests raise and clear them.
+func quickAlarms() Config {
+	o := conformal.AlarmOptions{Recent: 8, Reference: 64, MinSamples: 32, Z: 2}
+	r := o
+	r.Kind = conformal.KindRawDrift
+	return Config{CoverageWindow: 96, Alarm: o, RawAlarm: r}
 }
 
 // noSnapshot is a forecaster that cannot encode its state.
@@ -639,13 +649,14 @@ func TestSnapshotHasNoSideEffect(t *testing.T) {
 }
 
 // TestSnapshotOldVersionsMigrate: snapshots of format versions 2 and 1
-// restore, and are written back as version 3. testdata/snapshot_v2_pv.bin
+// restore, and are written back as the current version (4; its coverage
+// monitors, of their version 1 in the old snapshot, get new alarms). testdata/snapshot_v2_pv.bin
 // was written by the code of commit 4fa8b0e (format version 2, which also
 // held the latest forecast's features of each pending forecast) for the
 // pv-test site fed variedFeed(pv-test, 2, 23), baseline forecaster, aci,
 // sequence 77. Its version 1 form (the same bytes without the held
 // section: written before the reorder window) must restore to the same
-// state, with nothing held; the version 3 snapshot of that state restores
+// state, with nothing held; the current snapshot of that state restores
 // to itself, and all three give the same next bundle.
 func TestSnapshotOldVersionsMigrate(t *testing.T) {
 	site := testSites()[0]
@@ -662,7 +673,7 @@ func TestSnapshotOldVersionsMigrate(t *testing.T) {
 		t.Fatalf("version 2 refused: %v (sequence %d)", err, seq)
 	}
 	v3 := snapshot(t, a, 77)
-	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 3 {
+	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 4 {
 		t.Fatalf("written back as version %d", v)
 	}
 	c, _, err := RestoreActor(site, cfg, v3)
@@ -670,7 +681,7 @@ func TestSnapshotOldVersionsMigrate(t *testing.T) {
 		t.Fatal(err)
 	}
 	if again := snapshot(t, c, 77); !bytes.Equal(again, v3) {
-		t.Error("the version 3 snapshot of a migrated state does not restore to itself")
+		t.Error("the current snapshot of a migrated state does not restore to itself")
 	}
 
 	fstate, err := a.fc.(model.Snapshotter).MarshalBinary()

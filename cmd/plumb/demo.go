@@ -223,8 +223,10 @@ func activeAlarms(evs []conformal.Event) int {
 	return n
 }
 
+// alarmKey names a site's alarm of a kind: the lead bucket and level of an
+// event name the pair that raised or, at the clear, last cleared it.
 func alarmKey(e conformal.Event) string {
-	return fmt.Sprintf("%s/%s/%s/%g", e.Site, e.Kind, e.LeadBucket, e.Level)
+	return e.Site + "/" + e.Kind
 }
 
 var summaryLevels = []float64{0.05, 0.25, 0.5, 0.75, 0.95}
@@ -291,7 +293,7 @@ func writeDemoReport(w io.Writer, st []worker.SiteStats, alarms []conformal.Even
 			first[e.Kind] = &alarms[i]
 		}
 	}
-	fmt.Fprintf(w, "\nAlarms (one per site, kind, lead bucket and level): %d raised, %d cleared, %d still up.\n", raised, cleared, activeAlarms(alarms))
+	fmt.Fprintf(w, "\nAlarms (one per site and kind, raised by its first lead bucket and level off, cleared by its last): %d raised, %d cleared, %d still up.\n", raised, cleared, activeAlarms(alarms))
 	fmt.Fprintf(w, "Injected fault: %s output falls to %.0f%% from %s.\n", fault.Site, 100*fault.Factor, fault.From.Format(time.RFC3339))
 	if len(first) == 0 {
 		fmt.Fprintf(w, "Fault NOT caught: no alarm was raised on %s after %s.\n", fault.Site, fault.From.Format(time.RFC3339))

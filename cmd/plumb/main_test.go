@@ -8,10 +8,13 @@ import (
 	"os"
 	"path/filepath"
 	"regexp"
+	"strconv"
 	"strings"
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/plumb-forecast/plumb/conformal"
 )
 
 // syncBuffer is a bytes.Buffer safe for one writer and one reader.
@@ -62,7 +65,11 @@ func TestHelp(t *testing.T) {
 }
 
 // TestDemo runs the README's demo command (as fast as possible) and checks
-// that its report shows the injected fault's alarm being raised.
+// that its report shows the injected fault's alarms being raised, raw_drift
+// within a day of the fault, and that the five sites without a fault raise
+// each kind of alarm at most four times in the four weeks (the fleet is
+// invented: this holds the demo to what it shows, not the method to the
+// outside world; the open-data tests of worker/backtest do that).
 func TestDemo(t *testing.T) {
 	if testing.Short() {
 		t.Skip("the demo takes a few seconds")
@@ -75,10 +82,33 @@ func TestDemo(t *testing.T) {
 		"injected fault: pv-heron-flats",
 		"== report",
 		"Fault caught: coverage_off alarm raised on pv-heron-flats",
+		"Fault caught: raw_drift alarm raised on pv-heron-flats",
 		"The fleet is invented",
 	} {
 		if !strings.Contains(out, want) {
 			t.Errorf("demo output lacks %q:\n%s", want, out)
+		}
+	}
+	m := regexp.MustCompile(`Fault caught: raw_drift alarm raised on pv-heron-flats at \S+ \([^)]*\), (\S+) after the fault`).FindStringSubmatch(out)
+	if m == nil {
+		t.Fatalf("no raw_drift delay in the report:\n%s", out)
+	}
+	if d, err := time.ParseDuration(m[1]); err != nil || d > 24*time.Hour {
+		t.Errorf("raw_drift raised %s after the fault (%v), want within a day", m[1], err)
+	}
+	rows := regexp.MustCompile(`(?m)^((?:pv|wind)-\S+)\s.*\s(\d+)\s+(\d+)$`).FindAllStringSubmatch(out, -1)
+	if len(rows) != 6 {
+		t.Fatalf("%d site rows in the report, want 6:\n%s", len(rows), out)
+	}
+	for _, r := range rows {
+		if r[1] == "pv-heron-flats" {
+			continue
+		}
+		if c, _ := strconv.Atoi(r[2]); c > 4 {
+			t.Errorf("%s: %d coverage_off alarms without a fault", r[1], c)
+		}
+		if c, _ := strconv.Atoi(r[3]); c > 4 {
+			t.Errorf("%s: %d raw_drift alarms without a fault", r[1], c)
 		}
 	}
 }
@@ -186,5 +216,16 @@ func TestBacktestCommand(t *testing.T) {
 	code, _, errOut = run(t, "backtest", "--data", bad, "--out", t.TempDir(), "--quiet")
 	if code != 1 || !strings.Contains(errOut, "meter.csv:2") || !strings.Contains(errOut, "interval_start") {
 		t.Fatalf("malformed folder: code %d, %q", code, errOut)
+	}
+}
+
+// TestAlarmLine: plumb tail writes an alarm event on one line with its
+// state, event time, site, kind, level, lead bucket and reason.
+func TestAlarmLine(t *testing.T) {
+	e := conformal.Event{Site: "pv-heron-flats", Kind: conformal.KindRawDrift, State: conformal.StateRaised, Level: 0.1,
+		LeadBucket: "0h-1h", EventTime: time.Date(2026, 3, 16, 17, 45, 0, 0, time.UTC), Reason: "raw model coverage moved"}
+	want := "ALARM raised  2026-03-16T17:45:00Z pv-heron-flats raw_drift level 0.10 lead 0h-1h: raw model coverage moved"
+	if got := alarmLine(e); got != want {
+		t.Errorf("alarmLine =\n%q, want\n%q", got, want)
 	}
 }

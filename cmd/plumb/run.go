@@ -66,6 +66,7 @@ type workerFlags struct {
 	gamma      float64
 	window     int
 	tolerance  float64
+	alarmZ     float64
 	shards     int
 	reorder    time.Duration
 }
@@ -77,8 +78,9 @@ func (w *workerFlags) register(fs *flag.FlagSet) {
 	fs.StringVar(&w.calibrator, "calibrator", "aci", "online calibrator per lead bucket and level: "+strings.Join(conformal.Methods(), ", ")+
 		" (aci: adaptive conformal inference; pid: quantile tracker with integrator; dtaci: ACI with self-tuned step; split: rolling split conformal; none: the raw model)")
 	fs.Float64Var(&w.gamma, "gamma", conformal.DefaultGamma, "step size of the aci calibrator: larger follows a change faster, and costs more pinball loss")
-	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which live coverage is judged")
-	fs.Float64Var(&w.tolerance, "alarm-tolerance", 0.05, "raise a coverage alarm when live coverage is further than this from the level (and the batch-means coverage test rejects at 1 %)")
+	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which the rolling coverage of the live summary and metrics is taken")
+	fs.Float64Var(&w.tolerance, "alarm-tolerance", conformal.DefaultAlarmTolerance, "raise an alarm only when the recent coverage (weighted to the last 96 settled forecasts of a lead bucket and level: a day of 15-minute intervals) is at least this far from the level (coverage_off) or from the raw model's own history (raw_drift)")
+	fs.Float64Var(&w.alarmZ, "alarm-z", conformal.DefaultAlarmZ, "and only when that gap is at least this many times its usual spread at the site, lead bucket and level (larger: fewer alarms, later)")
 	fs.IntVar(&w.shards, "shards", 2, "goroutines the site actors are spread over")
 	fs.DurationVar(&w.reorder, "reorder-window", 0, "hold each input until one this much later in event time has come, and apply them in event-time order: inputs shuffled within the window (several meter gateways, retries) then give exactly the state inputs in order give, and bundles lag by the window (0: apply on arrival; at most 6h, the lateness)")
 }
@@ -102,11 +104,15 @@ func (w *workerFlags) config() (worker.Config, error) {
 		HorizonMinutes: int(w.horizon / time.Minute),
 		CoverageWindow: w.window,
 		Calibrator:     conformal.Options{Method: w.calibrator, Gamma: w.gamma},
-		Alarm:          conformal.AlarmOptions{Tolerance: w.tolerance},
+		Alarm:          conformal.AlarmOptions{Tolerance: w.tolerance, Z: w.alarmZ},
+		RawAlarm:       conformal.AlarmOptions{Tolerance: w.tolerance, Z: w.alarmZ, Kind: conformal.KindRawDrift},
 		Reorder:        w.reorder,
 	}
 	if _, err := conformal.New(0.5, cfg.Calibrator); err != nil {
 		return worker.Config{}, err
+	}
+	if _, err := conformal.NewAlarm(cfg.Alarm); err != nil {
+		return worker.Config{}, fmt.Errorf("--alarm-tolerance %v, --alarm-z %v: %w", w.tolerance, w.alarmZ, err)
 	}
 	probe := model.Site{ID: "probe", Kind: model.KindWind, CapacityMW: 1}
 	if _, err := model.New(w.model, probe, model.DefaultBuckets()); err != nil {

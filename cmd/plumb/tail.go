@@ -136,5 +136,5 @@ func alarmLine(e conformal.Event) string {
 	if e.LeadBucket != "" {
 		s += " lead " + e.LeadBucket
 	}
-	return s + fmt.Sprintf(": observed %.3f target %.3f over %d (p=%.2g) %s", e.Observed, e.Target, e.Window, e.PValue, e.Reason)
+	return s + ": " + e.Reason
 }

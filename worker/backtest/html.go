@@ -697,7 +697,7 @@ func htmlSites(r *Report) ([]htmlTable, string) {
 // htmlLeads is the per-lead-bucket table of the main variant's intraday
 // view.
 // htmlAlarms tables the alarms each calibrated variant raised while scored
-// forecasts were issued (one alarm per site, kind, lead bucket and level).
+// forecasts were issued (one alarm per site and kind: raised by its first lead bucket and level off, cleared by its last).
 func htmlAlarms(r *Report) htmlTable {
 	t := htmlTable{Header: []string{"Variant", "Site", "Kind", "Raised", "First raised (UTC)"}}
 	for _, v := range r.Variants {
