@@ -172,3 +172,7 @@ func (a *ACI) UnmarshalBinary(data []byte) error {
 	a.level, a.gamma, a.alphaT = level, gamma, alphaT
 	return nil
 }
+
+// Correction returns what Adjust would return now, without its side
+// effects (see Corrector).
+func (a *ACI) Correction() (level, offset float64) { return 1 - a.alphaT, 0 }

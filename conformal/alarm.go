@@ -223,6 +223,10 @@ func (a *Alarm) Add(hit bool) {
 	a.vw = a.af*a.vw + 1
 }
 
+// Z returns the last check's gap in units of the usual spread (0 before
+// the first check).
+func (a *Alarm) Z() float64 { return a.z }
+
 // Recent returns the recent coverage, 0 before the first outcome.
 func (a *Alarm) Recent() float64 {
 	if a.n == 0 {

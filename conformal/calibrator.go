@@ -25,6 +25,15 @@ type Calibrator interface {
 	Update(o Outcome)
 }
 
+// Corrector is implemented by calibrators that can tell the correction
+// Adjust would return now without Adjust's side effects (Split notes the
+// offset it issued): the coverage monitor's readout of the calibrator's
+// work. Every calibrator of this package implements it; the conformance
+// suite holds Correction to Adjust's answer.
+type Corrector interface {
+	Correction() (level, offset float64)
+}
+
 // Outcome is one settled forecast of one level.
 type Outcome struct {
 	// Y is the observed mean power (MW).

@@ -325,3 +325,7 @@ func (d *DtACI) UnmarshalBinary(data []byte) error {
 	*d = *n
 	return nil
 }
+
+// Correction returns what Adjust would return now, without its side
+// effects (see Corrector).
+func (d *DtACI) Correction() (level, offset float64) { return 1 - d.alphaT, 0 }

@@ -60,3 +60,7 @@ func (n *None) UnmarshalBinary(data []byte) error {
 	n.level = level
 	return nil
 }
+
+// Correction returns what Adjust would return now, without its side
+// effects (see Corrector).
+func (n *None) Correction() (level, offset float64) { return n.level, 0 }

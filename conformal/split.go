@@ -312,3 +312,7 @@ func (r *sortedRing) quantile(l float64) float64 {
 	}
 	return x[i] + (h-float64(i))*(x[i+1]-x[i])
 }
+
+// Correction returns what Adjust would return now, without its side
+// effects (see Corrector).
+func (s *Split) Correction() (level, offset float64) { return s.level, s.offset }

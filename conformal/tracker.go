@@ -341,3 +341,7 @@ func (t *Tracker) UnmarshalBinary(data []byte) error {
 	t.settle()
 	return nil
 }
+
+// Correction returns what Adjust would return now, without its side
+// effects (see Corrector).
+func (t *Tracker) Correction() (level, offset float64) { return t.level, t.off }

@@ -164,11 +164,23 @@ type target struct {
 // cell holds the calibration and coverage state of one (lead bucket, level).
 type cell struct {
 	cal     conformal.Calibrator
+	corr    conformal.Corrector // cal, if it tells its correction; else nil
 	mon     *conformal.Monitor
 	settled int // forecasts settled so far
 	hits    int // outcomes at or below the published quantile
 	rawHits int // outcomes at or below the raw quantile
+	// The calibrator's correction (the level it asks for, the offset it
+	// adds) averaged over about a day of settlements (half-life
+	// corrHalfLife): the correction now less this is its trend.
+	corrLevel, corrOffset float64
 }
+
+// corrHalfLife is the half-life, in settlements, of a cell's mean
+// correction: a day of 15-minute intervals.
+const corrHalfLife = 96
+
+// corrWeight is the weight of the newest correction in that mean.
+var corrWeight = -math.Expm1(-math.Ln2 / corrHalfLife)
 
 // Actor owns one site's state: weather runs in force, pending forecasts,
 // forecaster, calibrators and coverage monitors. It is not safe for
@@ -267,7 +279,8 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 		if err != nil {
 			return nil, fmt.Errorf("worker: site %s: %w", site.ID, err)
 		}
-		a.cells[i] = cell{cal: c, mon: mon}
+		corr, _ := c.(conformal.Corrector)
+		a.cells[i] = cell{cal: c, corr: corr, mon: mon}
 	}
 	h := fnv.New64a()
 	h.Write([]byte(site.ID))
@@ -598,6 +611,15 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 				issued = math.Nextafter(y, math.Inf(-1))
 			}
 			c.cal.Update(conformal.Outcome{Y: y, Issued: issued, PIT: pit})
+			if c.corr != nil {
+				l, o := c.corr.Correction()
+				if c.settled == 0 {
+					c.corrLevel, c.corrOffset = l, o
+				} else {
+					c.corrLevel += corrWeight * (l - c.corrLevel)
+					c.corrOffset += corrWeight * (o - c.corrOffset)
+				}
+			}
 			rawHit := pit <= a.cfg.Levels[j]
 			c.mon.Record(hit, true, rawHit)
 			c.settled++
@@ -1193,4 +1215,77 @@ func (a *Actor) ActiveAlarms() int {
 		}
 	}
 	return n
+}
+
+// CellReport is the coverage monitor's reading of one (lead bucket, level)
+// of a site: what a person checks when an alarm is raised. Coverage is the
+// share of settled outcomes at or below the quantile.
+type CellReport struct {
+	LeadBucket string  `json:"lead_bucket"`
+	Level      float64 `json:"level"`
+	// Settled counts the forecasts settled since the site started (or its
+	// snapshots); Window the latest of them the rolling figures are over.
+	Settled int `json:"settled"`
+	Window  int `json:"window"`
+	// Coverage and RawCoverage are over the window, of the published
+	// quantile and of the raw model's; the EW ones are exponentially
+	// weighted (half-life 96 settlements). All are zero before the first
+	// settlement.
+	Coverage      float64 `json:"coverage"`
+	RawCoverage   float64 `json:"raw_coverage"`
+	EWCoverage    float64 `json:"ew_coverage"`
+	RawEWCoverage float64 `json:"raw_ew_coverage"`
+	// KupiecP and ChristoffersenP are the p-values of the unconditional
+	// coverage and independence tests on the window (1 for an empty one).
+	// Outcomes of one site are correlated for days: read them as a guide.
+	KupiecP         float64 `json:"kupiec_p"`
+	ChristoffersenP float64 `json:"christoffersen_p"`
+	// CalibratedLevel and Offset are the calibrator's correction now: the
+	// level it asks the forecaster for and the offset it adds (MW); zero
+	// for a calibrator that cannot tell (not a conformal.Corrector). The
+	// trends are the correction now less its mean over about a day of
+	// settlements (half-life 96): a calibrator working hard moves fast.
+	CalibratedLevel float64 `json:"calibrated_level"`
+	Offset          float64 `json:"offset"`
+	LevelTrend      float64 `json:"level_trend"`
+	OffsetTrend     float64 `json:"offset_trend"`
+	// The two alarms of the pair: raised or not, and the last z.
+	CoverageOff bool    `json:"coverage_off"`
+	CoverageZ   float64 `json:"coverage_z"`
+	RawDrift    bool    `json:"raw_drift"`
+	RawZ        float64 `json:"raw_z"`
+}
+
+// Coverage returns the monitor's reading of every (lead bucket, level), by
+// lead bucket then level. The slice is the caller's.
+func (a *Actor) Coverage() []CellReport {
+	nl := len(a.cfg.Levels)
+	out := make([]CellReport, len(a.cells))
+	for i := range a.cells {
+		c, lvl := &a.cells[i], a.cfg.Levels[i%nl]
+		m := c.mon
+		r := CellReport{
+			LeadBucket: a.cfg.Buckets.Name(i / nl), Level: lvl, Settled: c.settled, Window: m.Calibrated.Count(),
+			Coverage: m.Calibrated.Coverage(), RawCoverage: m.Raw.Coverage(),
+			EWCoverage: m.CalibratedEW.Coverage(), RawEWCoverage: m.RawEW.Coverage(),
+			KupiecP: 1, ChristoffersenP: 1,
+			CoverageOff: m.Alarm.Raised(), CoverageZ: m.Alarm.Z(),
+			RawDrift: m.RawAlarm.Raised(), RawZ: m.RawAlarm.Z(),
+		}
+		for _, v := range []*float64{&r.Coverage, &r.RawCoverage, &r.EWCoverage, &r.RawEWCoverage} {
+			if math.IsNaN(*v) {
+				*v = 0 // nothing settled yet
+			}
+		}
+		if n := m.Calibrated.Count(); n > 0 {
+			_, r.KupiecP = conformal.Kupiec(m.Calibrated.Misses(), n, 1-lvl)
+			_, r.ChristoffersenP = m.Calibrated.Transitions().Test()
+		}
+		if c.corr != nil {
+			r.CalibratedLevel, r.Offset = c.corr.Correction()
+			r.LevelTrend, r.OffsetTrend = r.CalibratedLevel-c.corrLevel, r.Offset-c.corrOffset
+		}
+		out[i] = r
+	}
+	return out
 }

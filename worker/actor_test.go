@@ -5,10 +5,12 @@ import (
 	"errors"
 	"math"
 	"math/rand/v2"
+	"reflect"
 	"slices"
 	"testing"
 	"time"
 
+	"github.com/plumb-forecast/plumb/conformal"
 	"github.com/plumb-forecast/plumb/model"
 	"github.com/plumb-forecast/plumb/model/solar"
 	"github.com/plumb-forecast/plumb/stream"
@@ -352,5 +354,54 @@ func TestPITOf(t *testing.T) {
 		if got := pitOf(levels, c.q, c.y, c.u); math.Abs(got-c.want) > 1e-12 {
 			t.Errorf("%s: pitOf(%v, %v, u %v) = %v, want %v", c.comment, c.q, c.y, c.u, got, c.want)
 		}
+	}
+}
+
+// TestCoverageReadout: the coverage monitor's readout of a site agrees
+// with its parts (Kupiec p-value recomputed from the window's misses, the
+// correction equal to the calibrator's Adjust), tells a calibrator's trend
+// (zero at its first settlement), and survives a snapshot exactly.
+func TestCoverageReadout(t *testing.T) {
+	site := testSites()[1]
+	cfg := Config{}.WithDefaults()
+	a, err := NewActor(site, cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, x := range inputs(variedFeed(site, 4, 31)) {
+		apply(t, a, x)
+	}
+	cells := a.Coverage()
+	nl := len(cfg.Levels)
+	if len(cells) != cfg.Buckets.Len()*nl {
+		t.Fatalf("%d cells", len(cells))
+	}
+	moving := 0
+	for i, c := range cells {
+		m := a.cells[i].mon
+		if c.Level != cfg.Levels[i%nl] || c.LeadBucket != cfg.Buckets.Name(i/nl) || c.Window != m.Calibrated.Count() {
+			t.Fatalf("cell %d: %+v", i, c)
+		}
+		if c.Window > 0 {
+			if _, p := conformal.Kupiec(m.Calibrated.Misses(), c.Window, 1-c.Level); p != c.KupiecP {
+				t.Errorf("cell %d: Kupiec p %v, want %v", i, c.KupiecP, p)
+			}
+		}
+		if l, o := a.cells[i].cal.Adjust(); l != c.CalibratedLevel || o != c.Offset {
+			t.Errorf("cell %d: correction (%v, %v), Adjust (%v, %v)", i, c.CalibratedLevel, c.Offset, l, o)
+		}
+		if c.LevelTrend != 0 {
+			moving++
+		}
+	}
+	if moving == 0 {
+		t.Error("no calibrator's level moved over four days: the trend is not kept")
+	}
+	b, _, err := RestoreActor(site, cfg, snapshot(t, a, 1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got := b.Coverage(); !reflect.DeepEqual(got, cells) {
+		t.Error("the readout changed across a snapshot")
 	}
 }

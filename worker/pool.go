@@ -448,7 +448,7 @@ func (p *Pool) afterSeq(sh *shard, a *Actor, it item) {
 func (p *Pool) control(ctx context.Context, site string, f func(sh *shard)) error {
 	sh, ok := p.home[site]
 	if !ok {
-		return fmt.Errorf("worker: site %q is not in the registry", site)
+		return fmt.Errorf("worker: site %q: %w", site, ErrUnknownSite)
 	}
 	done := make(chan struct{})
 	p.mu.RLock()
@@ -553,6 +553,35 @@ type SiteStats struct {
 	Now          time.Time
 	Levels       []LevelStats
 	ActiveAlarms int
+}
+
+// ErrUnknownSite is wrapped by the Pool's methods for a site not in its
+// registry.
+var ErrUnknownSite = errors.New("site not in the registry")
+
+// ErrNotHeld is wrapped by Pool.Coverage for a site in the registry whose
+// actor this pool does not hold (in durable mode, a site of a partition
+// another worker leases).
+var ErrNotHeld = errors.New("site not held by this worker")
+
+// Coverage returns the coverage monitor's reading of one site
+// (Actor.Coverage), taken on its shard's goroutine after the inputs queued
+// before it.
+func (p *Pool) Coverage(ctx context.Context, site string) ([]CellReport, error) {
+	var out []CellReport
+	held := false
+	err := p.control(ctx, site, func(sh *shard) {
+		if a, ok := sh.actors[site]; ok {
+			held, out = true, a.Coverage()
+		}
+	})
+	if err != nil {
+		return nil, err
+	}
+	if !held {
+		return nil, fmt.Errorf("worker: site %q: %w", site, ErrNotHeld)
+	}
+	return out, nil
 }
 
 // Stats returns a snapshot of every site's coverage, sorted by site id. It runs on the shards' goroutines, after the inputs queued

@@ -43,8 +43,9 @@ package worker
 //	             per level each; the raw ones of a night forecast, never
 //	             read, as 0)
 //	cells        per lead bucket, per level: the calibrator's state, the
-//	             coverage monitor's state (nested), and the forecasts
-//	             settled, hits and raw hits (int64)
+//	             coverage monitor's state (nested), the forecasts
+//	             settled, hits and raw hits (int64), and the mean
+//	             correction's level and offset (floats)
 //	events       count of queued alarm events; each: site, kind, state
 //	             (strings), level (float), lead bucket (string), target,
 //	             observed (floats), window (int64), p-value, reference,
@@ -64,7 +65,8 @@ package worker
 // run in runs (uint32, 0 for none) and the row's index in the run (uint32).
 //
 // Version 3 is version 4 without the reference, z and cells of the queued
-// events (read as zero). Its coverage monitors are of their own version 1,
+// events (read as zero) and without the cells' mean corrections (they start
+// at the calibrators' corrections). Its coverage monitors are of their own version 1,
 // with window-based alarms: those are replaced by new, cleared alarms
 // (conformal.Monitor.UnmarshalBinary), which judge again once they have
 // seen enough outcomes. Version 2 is version 3 with, after the features of each pending forecast,
@@ -288,6 +290,8 @@ func (a *Actor) Snapshot(seq uint64) ([]byte, error) {
 		w.i64(int64(c.settled))
 		w.i64(int64(c.hits))
 		w.i64(int64(c.rawHits))
+		w.f64(c.corrLevel)
+		w.f64(c.corrOffset)
 	}
 
 	w.u32(len(a.events))
@@ -763,6 +767,16 @@ func (a *Actor) readState(r *snapReader, fs model.Snapshotter, version uint16) e
 		c.settled = r.int("forecasts settled", 0, math.MaxInt64)
 		c.hits = r.int("hits", 0, int64(c.settled))
 		c.rawHits = r.int("raw hits", 0, int64(c.settled))
+		if version >= 4 {
+			c.corrLevel, c.corrOffset = r.f64(), r.f64()
+			if r.err == nil && (math.IsNaN(c.corrLevel) || math.IsInf(c.corrLevel, 0) || math.IsNaN(c.corrOffset) || math.IsInf(c.corrOffset, 0)) {
+				r.fail("mean correction (%v, %v) of bucket %d level %v is not finite", c.corrLevel, c.corrOffset, i/nl, a.cfg.Levels[i%nl])
+			}
+		} else if c.corr != nil {
+			// Written before the mean correction was kept: it starts at
+			// the correction now (no trend).
+			c.corrLevel, c.corrOffset = c.corr.Correction()
+		}
 	}
 
 	ne := r.count("events", 80, math.MaxInt32)

@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"io"
+	"net/http"
 	"os"
 	"path/filepath"
 	"regexp"
@@ -15,6 +16,7 @@ import (
 	"time"
 
 	"github.com/plumb-forecast/plumb/conformal"
+	"github.com/plumb-forecast/plumb/worker"
 )
 
 // syncBuffer is a bytes.Buffer safe for one writer and one reader.
@@ -158,9 +160,58 @@ func TestThreeCommands(t *testing.T) {
 	if s := tOut.String(); !strings.Contains(s, "== wind-gorse-hill") || !strings.Contains(s, "q0.50") {
 		t.Fatalf("tail output:\n%s", s)
 	}
+	checkCoverageEndpoint(t, wErr.String())
 	cancel()
 	if code := <-done; code != 0 {
 		t.Fatalf("worker exit code %d:\n%s", code, wErr.String())
+	}
+}
+
+// checkCoverageEndpoint reads the worker's coverage monitor of a site over
+// HTTP (the address is in the worker's log): every lead bucket and level,
+// settled forecasts after the replay, figures within their ranges; and 404
+// for a site not in the registry.
+func checkCoverageEndpoint(t *testing.T, log string) {
+	t.Helper()
+	m := regexp.MustCompile(`http://127\.0\.0\.1:\d+`).FindString(log)
+	if m == "" {
+		t.Fatalf("no metrics address in the log:\n%s", log)
+	}
+	resp, err := http.Get(m + "/coverage/wind-gorse-hill")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	var got struct {
+		Site  string
+		Cells []worker.CellReport
+	}
+	if err := json.NewDecoder(resp.Body).Decode(&got); err != nil || resp.StatusCode != http.StatusOK {
+		t.Fatalf("GET /coverage: %s, %v", resp.Status, err)
+	}
+	if got.Site != "wind-gorse-hill" || len(got.Cells) != 8*19 {
+		t.Fatalf("site %q, %d cells, want 152 (8 lead buckets, 19 levels)", got.Site, len(got.Cells))
+	}
+	settled := 0
+	for _, c := range got.Cells {
+		settled += c.Settled
+		if c.Coverage < 0 || c.Coverage > 1 || c.KupiecP < 0 || c.KupiecP > 1 || c.Window > c.Settled {
+			t.Errorf("cell %+v", c)
+		}
+		if c.Settled > 0 && c.CalibratedLevel == 0 {
+			t.Errorf("cell %s %.2f settled %d but tells no correction", c.LeadBucket, c.Level, c.Settled)
+		}
+	}
+	if settled == 0 {
+		t.Error("no forecast settled after two days of readings")
+	}
+	resp2, err := http.Get(m + "/coverage/no-such-site")
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp2.Body.Close()
+	if resp2.StatusCode != http.StatusNotFound {
+		t.Errorf("unknown site: %s, want 404", resp2.Status)
 	}
 }
 

@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"flag"
 	"fmt"
@@ -228,12 +229,12 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		return err
 	}
 	if *metrics != "" {
-		stop, addr, err := serveMetrics(*metrics, reg)
+		stop, addr, err := serveMetrics(*metrics, reg, pool)
 		if err != nil {
 			log.Warn("metrics endpoint not started", zap.Error(err))
 		} else {
 			defer stop()
-			log.Info("metrics", zap.String("url", "http://"+addr+"/metrics"))
+			log.Info("metrics", zap.String("url", "http://"+addr+"/metrics"), zap.String("coverage", "http://"+addr+"/coverage/<site>"))
 		}
 	}
 	ready := make(chan struct{})
@@ -259,14 +260,45 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	return err
 }
 
-// serveMetrics serves reg on addr until stop is called.
-func serveMetrics(addr string, reg *prometheus.Registry) (stop func(), bound string, err error) {
+// coverageHandler answers GET /coverage/<site> with the site's coverage
+// monitor (worker.CellReport, one per lead bucket and level) as JSON: 404
+// for a site not in the registry or not held by this worker.
+func coverageHandler(pool *worker.Pool) http.Handler {
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		site := r.PathValue("site")
+		ctx, cancel := context.WithTimeout(r.Context(), 5*time.Second)
+		defer cancel()
+		cells, err := pool.Coverage(ctx, site)
+		switch {
+		case errors.Is(err, worker.ErrUnknownSite) || errors.Is(err, worker.ErrNotHeld):
+			http.Error(w, err.Error(), http.StatusNotFound)
+			return
+		case err != nil:
+			http.Error(w, err.Error(), http.StatusServiceUnavailable)
+			return
+		}
+		w.Header().Set("Content-Type", "application/json")
+		enc := json.NewEncoder(w)
+		enc.SetIndent("", " ")
+		if err := enc.Encode(struct {
+			Site  string              `json:"site"`
+			Cells []worker.CellReport `json:"cells"`
+		}{site, cells}); err != nil {
+			http.Error(w, err.Error(), http.StatusInternalServerError)
+		}
+	})
+}
+
+// serveMetrics serves reg on addr, and each site's coverage monitor at
+// /coverage/<site>, until stop is called.
+func serveMetrics(addr string, reg *prometheus.Registry, pool *worker.Pool) (stop func(), bound string, err error) {
 	ln, err := net.Listen("tcp", addr)
 	if err != nil {
 		return nil, "", fmt.Errorf("metrics: %w", err)
 	}
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{Registry: reg}))
+	mux.Handle("GET /coverage/{site}", coverageHandler(pool))
 	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	go func() {
 		if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {

@@ -109,6 +109,35 @@ var checks = []check{
 	{"CoverageCorrectlySpecified", checkCoverageCorrect},
 	{"CoverageMisspecified", checkCoverageShifted},
 	{"StateRoundTrip", checkRoundTrip},
+	{"CorrectionIsAdjust", checkCorrection},
+}
+
+// checkCorrection: a calibrator that implements conformal.Corrector tells
+// the answer Adjust gives next, and asking changes nothing it does after.
+func checkCorrection(newCal func(float64) conformal.Calibrator, _ Options) error {
+	if _, ok := newCal(0.5).(conformal.Corrector); !ok {
+		return fmt.Errorf("%w: no Correction method", errSkip)
+	}
+	for _, level := range levels {
+		a, b := newCal(level), newCal(level)
+		rng := source(3, level)
+		for i := range 2000 {
+			l, o := a.(conformal.Corrector).Correction()
+			la, oa := a.Adjust()
+			lb, ob := b.Adjust()
+			if !same(l, o, la, oa) {
+				return fmt.Errorf("level %v, outcome %d: Correction (%v, %v), Adjust (%v, %v)", level, i, l, o, la, oa)
+			}
+			if !same(la, oa, lb, ob) {
+				return fmt.Errorf("level %v, outcome %d: asking Correction changed Adjust: (%v, %v) against (%v, %v)", level, i, la, oa, lb, ob)
+			}
+			y := 0.5 + 1.5*rng.NormFloat64()
+			out := conformal.Outcome{Y: y, Issued: quantile(la) + oa, PIT: 0.5}
+			a.Update(out)
+			b.Update(out)
+		}
+	}
+	return nil
 }
 
 // quantile is the synthetic forecaster: the N(0, 1) quantile at level l.

@@ -52,6 +52,32 @@ func (c *drifting) Adjust() (float64, float64) {
 }
 func (c *drifting) Update(conformal.Outcome) {}
 
+// offCorrector tells a correction a hair off the one Adjust gives.
+type offCorrector struct{ *conformal.ACI }
+
+func (c offCorrector) Correction() (float64, float64) {
+	l, o := c.ACI.Correction()
+	return l + 1e-9, o
+}
+
+// nudging learns each outcome twice once its correction was asked.
+type nudging struct {
+	*conformal.ACI
+	asked bool
+}
+
+func (c *nudging) Correction() (float64, float64) {
+	c.asked = true
+	return c.ACI.Correction()
+}
+func (c *nudging) Update(o conformal.Outcome) {
+	c.ACI.Update(o)
+	if c.asked {
+		c.ACI.Update(o)
+	}
+	c.asked = false
+}
+
 // forgetful is an ACI whose state drops alpha_t (restores the initial one).
 type forgetful struct{ *conformal.ACI }
 
@@ -92,6 +118,8 @@ func TestSuiteCatchesDefects(t *testing.T) {
 		{"biased identity", newShifted(0.1), Options{NoCorrection: true}, checkCoverageShifted, "uncorrected forecaster"},
 		{"state loses alpha_t", func(l float64) conformal.Calibrator { return forgetful{aci(l).(*conformal.ACI)} }, Options{}, checkRoundTrip, "after the restore"},
 		{"no unmarshaler", func(l float64) conformal.Calibrator { return marshalOnly{conformal.NewNone(l)} }, Options{}, checkRoundTrip, "not encoding.BinaryUnmarshaler"},
+		{"correction off by a hair", func(l float64) conformal.Calibrator { return offCorrector{aci(l).(*conformal.ACI)} }, Options{}, checkCorrection, "Correction ("},
+		{"correction with a side effect", func(l float64) conformal.Calibrator { return &nudging{aci(l).(*conformal.ACI), false} }, Options{}, checkCorrection, "changed Adjust"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
