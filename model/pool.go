@@ -71,20 +71,23 @@ type ringIndex interface{ ~uint16 | ~uint32 }
 const maxRing16 = 1 << 16
 
 // sortedRing is the window of residualPool kept more compactly: the values
-// in arrival order (a ring) and, instead of a sorted copy of them, their
-// ring indices in increasing order of value. With uint16 indices a value
-// takes 10 bytes instead of 16. Its quantile is residualPool's, the same
-// float for the same values: the values read are the same, in the same
-// order. (Which of equal values an order position points to can differ,
-// so a zero can come out with the other sign; no caller tells them apart.)
+// in arrival order (a ring) as float32 and, instead of a sorted copy of
+// them, their ring indices in increasing order of value. With uint16
+// indices a value takes 6 bytes instead of 16. The values are residuals
+// per unit of capacity (|r| of order 1), which float32 holds to about 1e-7
+// of capacity, far below any meter's resolution. Its quantile is
+// residualPool's given the values rounded to float32: the values read are
+// the same, in the same order. (Which of equal values an order position
+// points to can differ, so a zero can come out with the other sign; no
+// caller tells them apart.)
 type sortedRing[I ringIndex] struct {
-	ring  []float64 // arrival order; the oldest is ring[head]
+	ring  []float32 // arrival order; the oldest is ring[head]
 	head  int
 	order []I // ring indices of the values held, by increasing value
 }
 
 func newSortedRing[I ringIndex](n int) sortedRing[I] {
-	return sortedRing[I]{ring: make([]float64, n), order: make([]I, 0, n)}
+	return sortedRing[I]{ring: make([]float32, n), order: make([]I, 0, n)}
 }
 
 func (p *sortedRing[I]) len() int { return len(p.order) }
@@ -96,15 +99,15 @@ func (p *sortedRing[I]) quantile(l float64) float64 {
 	h := l * float64(n-1)
 	i := int(h)
 	if i >= n-1 {
-		return p.ring[p.order[n-1]]
+		return float64(p.ring[p.order[n-1]])
 	}
-	lo, hi := p.ring[p.order[i]], p.ring[p.order[i+1]]
+	lo, hi := float64(p.ring[p.order[i]]), float64(p.ring[p.order[i+1]])
 	return lo + (h-float64(i))*(hi-lo)
 }
 
 // search returns the first position in order whose value is at or above v
 // (sort.SearchFloat64s on the sorted values).
-func (p *sortedRing[I]) search(v float64) int {
+func (p *sortedRing[I]) search(v float32) int {
 	lo, hi := 0, len(p.order)
 	for lo < hi {
 		m := int(uint(lo+hi) >> 1)
@@ -117,15 +120,16 @@ func (p *sortedRing[I]) search(v float64) int {
 	return lo
 }
 
-// add appends r (which must not be NaN), dropping the oldest value first if
-// the ring is full.
+// add appends r (which must not be NaN), rounded to float32, dropping the
+// oldest value first if the ring is full.
 func (p *sortedRing[I]) add(r float64) {
 	if len(p.order) == len(p.ring) {
 		p.dropOldest()
 	}
 	at := (p.head + len(p.order)) % len(p.ring)
-	p.ring[at] = r
-	i := p.search(r)
+	v := float32(r)
+	p.ring[at] = v
+	i := p.search(v)
 	p.order = append(p.order, 0)
 	copy(p.order[i+1:], p.order[i:])
 	p.order[i] = I(at)

@@ -324,11 +324,11 @@ func appendRings[I ringIndex](w *stateWriter, sets ...[]sortedRing[I]) error {
 			n := len(r.order)
 			w.u32(n)
 			for k := range n {
-				v := r.ring[(r.head+k)%len(r.ring)]
+				v := float64(r.ring[(r.head+k)%len(r.ring)])
 				if math.IsNaN(v) {
 					return errors.New("model: baseline: marshal: a residual window holds NaN")
 				}
-				w.f64(v)
+				w.f64(v) // exact: a float32 widens without loss
 			}
 		}
 	}
@@ -344,15 +344,18 @@ func readRings[I ringIndex](r *stateReader, window int, sets ...[]sortedRing[I])
 		for i := range rings {
 			g := &rings[i]
 			n := r.count(8, window)
-			r.floats(g.ring[:n])
-			if r.err != nil {
-				return
-			}
-			for _, v := range g.ring[:n] {
-				if math.IsNaN(v) {
-					r.fail("a residual window holds NaN")
+			for k := range n {
+				// Written from float32 values this is exact; a state
+				// written when the windows held float64 is rounded.
+				v := r.f64()
+				if r.err != nil {
 					return
 				}
+				if math.IsNaN(v) || math.Abs(v) > math.MaxFloat32 {
+					r.fail("a residual window holds %v", v)
+					return
+				}
+				g.ring[k] = float32(v)
 			}
 			order := g.order[:n]
 			for k := range order {
