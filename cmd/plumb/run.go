@@ -79,7 +79,7 @@ func (w *workerFlags) register(fs *flag.FlagSet) {
 	fs.StringVar(&w.calibrator, "calibrator", "aci", "online calibrator per lead bucket and level: "+strings.Join(conformal.Methods(), ", ")+
 		" (aci: adaptive conformal inference; pid: quantile tracker with integrator; dtaci: ACI with self-tuned step; split: rolling split conformal; none: the raw model)")
 	fs.Float64Var(&w.gamma, "gamma", conformal.DefaultGamma, "step size of the aci calibrator: larger follows a change faster, and costs more pinball loss")
-	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which the rolling coverage of the live summary and metrics is taken")
+	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which the rolling coverage is taken (live summary, metrics, /coverage/<site>)")
 	fs.Float64Var(&w.tolerance, "alarm-tolerance", conformal.DefaultAlarmTolerance, "raise an alarm only when the recent coverage (weighted to the last 96 settled forecasts of a lead bucket and level: a day of 15-minute intervals) is at least this far from the level (coverage_off) or from the raw model's own history (raw_drift)")
 	fs.Float64Var(&w.alarmZ, "alarm-z", conformal.DefaultAlarmZ, "and only when that gap is at least this many times its usual spread at the site, lead bucket and level (larger: fewer alarms, later)")
 	fs.IntVar(&w.shards, "shards", 2, "goroutines the site actors are spread over")
@@ -135,7 +135,7 @@ func runWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		sitesPath  = fs.String("sites", "", "site registry: a JSON array of sites (`file`, required)")
 		listen     = fs.String("listen", "127.0.0.1:4222", "embedded server's `address` (ignored with --nats); port 0 picks a free one")
 		store      = fs.String("store", "", "embedded server's JetStream `folder` (default: a temporary folder removed on exit)")
-		metrics    = fs.String("metrics", "127.0.0.1:9464", "serve Prometheus metrics on this `address` ('' to turn off)")
+		metrics    = fs.String("metrics", "127.0.0.1:9464", "serve Prometheus metrics (/metrics) and each site's coverage monitor as JSON (/coverage/<site>) on this `address` ('' to turn off)")
 		logFormat  = fs.String("log-format", "console", "log format: console or json")
 		logLevel   = fs.String("log-level", "info", "log level: debug, info, warn, error")
 		maxPayload = fs.Int("max-input-bytes", 1<<20, "largest input message accepted, in bytes")
