@@ -54,33 +54,6 @@ func (w *Window) Reset() {
 	w.next, w.count, w.hits = 0, 0, 0
 }
 
-// BatchCoverages writes to dst the coverage of each of len(dst) consecutive
-// batches of the held samples, oldest first (the last batch takes the
-// remainder), and returns dst. It panics if the window holds fewer samples
-// than batches.
-func (w *Window) BatchCoverages(dst []float64) []float64 {
-	b := len(dst)
-	if w.count < b || b == 0 {
-		panic("conformal: BatchCoverages needs at least one sample per batch")
-	}
-	per := w.count / b
-	k := 0
-	for i := range dst {
-		n := per
-		if i == b-1 {
-			n = w.count - k
-		}
-		hits := 0
-		for end := k + n; k < end; k++ {
-			if w.at(k) {
-				hits++
-			}
-		}
-		dst[i] = float64(hits) / float64(n)
-	}
-	return dst
-}
-
 // Size returns the capacity N.
 func (w *Window) Size() int { return w.size }
 
