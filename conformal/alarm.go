@@ -3,6 +3,7 @@ package conformal
 import (
 	"fmt"
 	"math"
+	"sync"
 	"time"
 )
 
@@ -176,16 +177,33 @@ func (o AlarmOptions) resolve() (AlarmOptions, error) {
 // Add and Check are O(1) in time and memory. The zero Alarm is not usable:
 // build one with NewAlarm. An Alarm is not safe for concurrent use.
 type Alarm struct {
-	opt AlarmOptions
-
-	ar, af float64 // the weight left to the past at each outcome, recent and longer-run
+	*alarmSpec // shared by every alarm of the same options
 
 	n              int
 	rs, rw, fs, fw float64 // recent and longer-run weighted sums of hits and of weights
 	vs, vw         float64 // weighted sums of the squared gap and of weights
 	raised         bool
 	// The last check, reported by Event.
-	target, ref, z float64
+	target, z float64
+}
+
+// alarmSpec is what alarms of the same options share: a site has two per
+// lead bucket and level, so each holding its own copy cost a site some 24
+// KB.
+type alarmSpec struct {
+	opt    AlarmOptions
+	ar, af float64 // the weight left to the past at each outcome, recent and longer-run
+}
+
+// specs interns the alarmSpecs by their (resolved) options.
+var specs sync.Map // AlarmOptions -> *alarmSpec
+
+func specFor(o AlarmOptions) *alarmSpec {
+	if v, ok := specs.Load(o); ok {
+		return v.(*alarmSpec)
+	}
+	v, _ := specs.LoadOrStore(o, &alarmSpec{opt: o, ar: math.Exp2(-1 / o.Recent), af: math.Exp2(-1 / o.Reference)})
+	return v.(*alarmSpec)
 }
 
 // NewAlarm returns a cleared alarm, or an error for invalid options.
@@ -194,7 +212,7 @@ func NewAlarm(o AlarmOptions) (*Alarm, error) {
 	if err != nil {
 		return nil, err
 	}
-	return &Alarm{opt: o, ar: math.Exp2(-1 / o.Recent), af: math.Exp2(-1 / o.Reference)}, nil
+	return &Alarm{alarmSpec: specFor(o)}, nil
 }
 
 // Options returns the options in force, defaults applied.
@@ -226,6 +244,15 @@ func (a *Alarm) Add(hit bool) {
 // Z returns the last check's gap in units of the usual spread (0 before
 // the first check).
 func (a *Alarm) Z() float64 { return a.z }
+
+// ref is what the last check compared the recent coverage with: the
+// target, or for raw_drift the longer-run coverage (0 before any check).
+func (a *Alarm) ref() float64 {
+	if a.opt.Kind == KindRawDrift && a.target != 0 {
+		return a.LongRun()
+	}
+	return a.target
+}
 
 // Recent returns the recent coverage, 0 before the first outcome.
 func (a *Alarm) Recent() float64 {
@@ -264,11 +291,8 @@ func (a *Alarm) Check(target float64) (changed, raised bool) {
 	if a.n == 0 {
 		return false, a.raised
 	}
-	a.target, a.ref = target, target
-	if a.opt.Kind == KindRawDrift {
-		a.ref = a.LongRun()
-	}
-	gap := a.Recent() - a.ref
+	a.target = target
+	gap := a.Recent() - a.ref()
 	a.z = 0
 	if sp := a.Spread(); sp > 0 {
 		a.z = gap / sp
@@ -313,7 +337,7 @@ func (a *Alarm) Event(site string, level float64, leadBucket string, at time.Tim
 		LeadBucket: leadBucket,
 		Target:     a.target,
 		Observed:   a.Recent(),
-		Reference:  a.ref,
+		Reference:  a.ref(),
 		Window:     a.n,
 		Z:          a.z,
 		PValue:     math.Erfc(math.Abs(a.z) / math.Sqrt2),
@@ -361,7 +385,7 @@ func (a *Alarm) MarshalBinary() ([]byte, error) {
 		b[1] = 1
 	}
 	b = appendUint64(b, uint64(a.n))
-	for _, v := range [...]float64{a.rs, a.rw, a.fs, a.fw, a.vs, a.vw, a.target, a.ref, a.z} {
+	for _, v := range [...]float64{a.rs, a.rw, a.fs, a.fw, a.vs, a.vw, a.target, a.ref(), a.z} {
 		b = appendFloat(b, v)
 	}
 	return b, nil
@@ -403,11 +427,20 @@ func (a *Alarm) UnmarshalBinary(data []byte) error {
 		// Hits never outweigh outcomes; a squared gap is at most 1.
 		ok = v[1] > 0 && v[3] > 0 && v[5] > 0 && v[0] <= v[1] && v[2] <= v[3] && v[4] <= v[5]
 	}
+	spec := a.alarmSpec
+	if spec == nil { // a zero Alarm: the default options
+		o, _ := AlarmOptions{}.resolve()
+		spec = specFor(o)
+	}
+	next := Alarm{alarmSpec: spec, raised: flag == 1, n: int(n),
+		rs: v[0], rw: v[1], fs: v[2], fw: v[3], vs: v[4], vw: v[5], target: v[6], z: v[8]}
+	// The reference follows from the rest (and the alarm's kind).
+	if ok && math.Float64bits(next.ref()) != math.Float64bits(v[7]) {
+		ok = false
+	}
 	if !ok {
 		return fmt.Errorf("%w: alarm: impossible state (flag %d, count %d, values %v)", ErrState, flag, n, v)
 	}
-	a.raised, a.n = flag == 1, int(n)
-	a.rs, a.rw, a.fs, a.fw, a.vs, a.vw = v[0], v[1], v[2], v[3], v[4], v[5]
-	a.target, a.ref, a.z = v[6], v[7], v[8]
+	*a = next
 	return nil
 }

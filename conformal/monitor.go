@@ -36,7 +36,8 @@ type MonitorOptions struct {
 // coverage: rolling and exponentially weighted coverage of the calibrated
 // forecast and of the raw forecast before calibration, and the alarm on the
 // calibrated coverage. The fields are the monitor's parts, exported for
-// reading; do not replace them.
+// reading; do not replace them. They are held by value: one allocation a
+// monitor (and its windows' bits), as a site has 152 of them.
 //
 // A Monitor is not safe for concurrent use.
 type Monitor struct {
@@ -44,14 +45,14 @@ type Monitor struct {
 	Level float64
 	// Calibrated and Raw hold the latest outcomes of the issued (calibrated)
 	// quantile and of the raw forecaster's quantile at Level.
-	Calibrated, Raw *Window
+	Calibrated, Raw Window
 	// CalibratedEW and RawEW are their exponentially weighted coverages.
-	CalibratedEW, RawEW *EWCoverage
+	CalibratedEW, RawEW EWCoverage
 	// Alarm watches the calibrated coverage against the level.
-	Alarm *Alarm
+	Alarm Alarm
 	// RawAlarm watches the raw model's coverage against its own history
 	// (kind KindRawDrift).
-	RawAlarm *Alarm
+	RawAlarm Alarm
 }
 
 // NewMonitor returns an empty monitor of a level in (0, 1), or an error for
@@ -86,12 +87,12 @@ func NewMonitor(level float64, o MonitorOptions) (*Monitor, error) {
 	}
 	return &Monitor{
 		Level:        level,
-		Calibrated:   NewWindow(o.Window),
-		Raw:          NewWindow(o.Window),
-		CalibratedEW: NewEWCoverage(o.HalfLife),
-		RawEW:        NewEWCoverage(o.HalfLife),
-		Alarm:        alarm,
-		RawAlarm:     rawAlarm,
+		Calibrated:   *NewWindow(o.Window),
+		Raw:          *NewWindow(o.Window),
+		CalibratedEW: *NewEWCoverage(o.HalfLife),
+		RawEW:        *NewEWCoverage(o.HalfLife),
+		Alarm:        *alarm,
+		RawAlarm:     *rawAlarm,
 	}, nil
 }
 
@@ -153,7 +154,7 @@ const monitorVersion = 2
 func (m *Monitor) MarshalBinary() ([]byte, error) {
 	b := append(make([]byte, 0, 64), monitorVersion)
 	b = appendFloat(b, m.Level)
-	for _, p := range []encoding.BinaryMarshaler{m.Calibrated, m.Raw, m.CalibratedEW, m.RawEW, m.Alarm, m.RawAlarm} {
+	for _, p := range []encoding.BinaryMarshaler{&m.Calibrated, &m.Raw, &m.CalibratedEW, &m.RawEW, &m.Alarm, &m.RawAlarm} {
 		s, err := p.MarshalBinary()
 		if err != nil {
 			return nil, err
@@ -188,24 +189,25 @@ func (m *Monitor) UnmarshalBinary(data []byte) error {
 	if checkLevel(level) != nil {
 		return fmt.Errorf("%w: monitor: level %v is outside (0, 1)", ErrState, level)
 	}
+	// The alarms keep the options the monitor was built with (the defaults
+	// for a zero Monitor).
 	opt := func(a *Alarm, kind string) (*Alarm, error) {
 		o := AlarmOptions{Kind: kind}
-		if a != nil {
+		if a.alarmSpec != nil {
 			o = a.opt
 		}
 		return NewAlarm(o)
 	}
-	alarm, err := opt(m.Alarm, KindCoverage)
+	alarm, err := opt(&m.Alarm, KindCoverage)
 	if err != nil {
 		return err
 	}
-	rawAlarm, err := opt(m.RawAlarm, KindRawDrift)
+	rawAlarm, err := opt(&m.RawAlarm, KindRawDrift)
 	if err != nil {
 		return err
 	}
-	next := Monitor{Level: level, Calibrated: &Window{}, Raw: &Window{},
-		CalibratedEW: &EWCoverage{}, RawEW: &EWCoverage{}, Alarm: alarm, RawAlarm: rawAlarm}
-	parts := []encoding.BinaryUnmarshaler{next.Calibrated, next.Raw, next.CalibratedEW, next.RawEW, next.Alarm, next.RawAlarm}
+	next := Monitor{Level: level, Alarm: *alarm, RawAlarm: *rawAlarm}
+	parts := []encoding.BinaryUnmarshaler{&next.Calibrated, &next.Raw, &next.CalibratedEW, &next.RawEW, &next.Alarm, &next.RawAlarm}
 	if version == 1 {
 		parts[4], parts[5] = skipState{}, skipState{}
 	}

@@ -40,14 +40,14 @@ func TestMonitorObserve(t *testing.T) {
 	for _, h := range []bool{true, false, true, true, true, false} {
 		ew.Add(h)
 	}
-	if *m.CalibratedEW != *ew {
+	if m.CalibratedEW != *ew {
 		t.Errorf("calibrated EW coverage %v, want %v", m.CalibratedEW.Coverage(), ew.Coverage())
 	}
 	rawEW := NewEWCoverage(2)
 	for _, h := range []bool{true, false, true, false, true} {
 		rawEW.Add(h)
 	}
-	if *m.RawEW != *rawEW {
+	if m.RawEW != *rawEW {
 		t.Errorf("raw EW coverage %v, want %v", m.RawEW.Coverage(), rawEW.Coverage())
 	}
 }
@@ -237,7 +237,7 @@ func TestMonitorVersion1Migrates(t *testing.T) {
 		m.Record(i%4 != 0, true, i%3 != 0)
 	}
 	v1 := append([]byte{1}, appendFloat(nil, 0.9)...)
-	for _, p := range []interface{ MarshalBinary() ([]byte, error) }{m.Calibrated, m.Raw, m.CalibratedEW, m.RawEW} {
+	for _, p := range []interface{ MarshalBinary() ([]byte, error) }{&m.Calibrated, &m.Raw, &m.CalibratedEW, &m.RawEW} {
 		s, _ := p.MarshalBinary()
 		v1 = appendUint32(v1, uint32(len(s)))
 		v1 = append(v1, s...)
@@ -251,7 +251,7 @@ func TestMonitorVersion1Migrates(t *testing.T) {
 	if err := r.UnmarshalBinary(v1); err != nil {
 		t.Fatal(err)
 	}
-	if r.Level != 0.9 || r.Calibrated.Hits() != m.Calibrated.Hits() || r.Raw.Count() != m.Raw.Count() || *r.RawEW != *m.RawEW {
+	if r.Level != 0.9 || r.Calibrated.Hits() != m.Calibrated.Hits() || r.Raw.Count() != m.Raw.Count() || r.RawEW != m.RawEW {
 		t.Errorf("restored level %v, windows %d/%d", r.Level, r.Calibrated.Hits(), r.Raw.Count())
 	}
 	if r.Alarm.Raised() || r.RawAlarm.Raised() || r.Alarm.Count() != 0 {
