@@ -207,17 +207,24 @@ type Actor struct {
 	freeT   []*target       // targets no longer pending
 
 	// The pending records, by record number r: recX[r/recChunk][r%recChunk],
-	// and the raw then the published quantiles at recQ[r/recChunk], from
-	// (r%recChunk)*2*len(levels).
+	// the raw quantiles at recRaw[r/recChunk] and the published ones at
+	// recPub[r/recChunk], from (r%recChunk)*len(levels). The raw ones are
+	// float32: they only feed the raw PIT (the raw monitor, dtaci's
+	// experts), where 1e-7 of a quantile is nothing, and a site holds
+	// hundreds of pending records. The published ones stay float64: each
+	// calibrator is judged on exactly what was published.
 	recX    [][]pendingX
-	recQ    [][]float64
+	recRaw  [][]float32
+	recPub  [][]float64
 	nrec    int32   // records made
 	freeRec []int32 // records no longer in use
 	// A record for a step whose pending forecast stays (closerLead).
-	spareX pendingX
-	xRun   *model.WeatherRun // the run of a.x.Weather (features sets both)
-	spareQ []float64
-	rawCut []float64 // settle: a pending forecast's raw quantiles, clipped
+	spareX   pendingX
+	xRun     *model.WeatherRun // the run of a.x.Weather (features sets both)
+	spareRaw []float32
+	sparePub []float64
+	rawQ     []float64 // refresh: the raw quantiles of a step, before they are kept
+	rawCut   []float64 // settle: a pending forecast's raw quantiles, clipped
 
 	cells  []cell // [bucket*len(levels)+level]
 	events []conformal.Event
@@ -285,7 +292,9 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 	h := fnv.New64a()
 	h.Write([]byte(site.ID))
 	a.siteHash = h.Sum64()
-	a.spareQ = make([]float64, 2*len(cfg.Levels))
+	a.spareRaw = make([]float32, len(cfg.Levels))
+	a.sparePub = make([]float64, len(cfg.Levels))
+	a.rawQ = make([]float64, len(cfg.Levels))
 	a.rawCut = make([]float64, len(cfg.Levels))
 	a.adjLevel = make([]float64, len(a.cells))
 	a.adjOffset = make([]float64, len(a.cells))
@@ -510,11 +519,10 @@ func (a *Actor) release(tg *target) {
 
 // record returns pending record r: its features, raw quantiles and
 // published quantiles.
-func (a *Actor) record(r int32) (x *pendingX, raw, pub []float64) {
+func (a *Actor) record(r int32) (x *pendingX, raw []float32, pub []float64) {
 	nl := len(a.cfg.Levels)
 	c, k := r/recChunk, int(r%recChunk)
-	q := a.recQ[c][k*2*nl : (k+1)*2*nl]
-	return &a.recX[c][k], q[:nl:nl], q[nl:]
+	return &a.recX[c][k], a.recRaw[c][k*nl : (k+1)*nl : (k+1)*nl], a.recPub[c][k*nl : (k+1)*nl : (k+1)*nl]
 }
 
 // newRecord returns a record number not in use.
@@ -526,7 +534,8 @@ func (a *Actor) newRecord() int32 {
 	}
 	if a.nrec%recChunk == 0 {
 		a.recX = append(a.recX, make([]pendingX, recChunk))
-		a.recQ = append(a.recQ, make([]float64, recChunk*2*len(a.cfg.Levels)))
+		a.recRaw = append(a.recRaw, make([]float32, recChunk*len(a.cfg.Levels)))
+		a.recPub = append(a.recPub, make([]float64, recChunk*len(a.cfg.Levels)))
 	}
 	a.nrec++
 	return a.nrec - 1
@@ -597,7 +606,7 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 		// the raw monitor read it).
 		hi := a.site.CapacityMW * px.avail
 		for j, v := range raw {
-			a.rawCut[j] = max(0, min(hi, v))
+			a.rawCut[j] = max(0, min(hi, float64(v)))
 		}
 		u := conformal.TieDraw(a.siteHash, r.IntervalStart, b)
 		pit := pitOf(a.cfg.Levels, a.rawCut, y, u)
@@ -1008,7 +1017,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 			if !a.replaces(t, bucket, issued) {
 				// The pending forecast of this (interval, bucket) stays.
 				px.issued++
-				px, raw, pub = &a.spareX, a.spareQ[:nl:nl], a.spareQ[nl:]
+				px, raw, pub = &a.spareX, a.spareRaw, a.sparePub
 				stays = true
 			}
 		}
@@ -1033,11 +1042,16 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 				// The raw quantiles are kept for settlement only, and
 				// this forecast is not kept: only the published row.
 				a.fc.Quantiles(row, x, levels)
-			} else if pair {
-				pq.QuantilesPair(raw, a.cfg.Levels, row, levels, x)
 			} else {
-				a.fc.Quantiles(raw, x, a.cfg.Levels)
-				a.fc.Quantiles(row, x, levels)
+				if pair {
+					pq.QuantilesPair(a.rawQ, a.cfg.Levels, row, levels, x)
+				} else {
+					a.fc.Quantiles(a.rawQ, x, a.cfg.Levels)
+					a.fc.Quantiles(row, x, levels)
+				}
+				for j, v := range a.rawQ {
+					raw[j] = float32(v)
+				}
 			}
 			// Adding a zero offset can only turn -0 into +0, which
 			// clipping does anyway.

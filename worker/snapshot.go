@@ -40,8 +40,8 @@ package worker
 //	             its lead bucket (uint32), the features of the forecast kept
 //	             for calibration and learning (see below), the raw
 //	             quantiles then each calibrator's own quantile (floats, one
-//	             per level each; the raw ones of a night forecast, never
-//	             read, as 0)
+//	             per level each; the raw ones hold float32 values, and
+//	             those of a night forecast, never read, are 0)
 //	cells        per lead bucket, per level: the calibrator's state, the
 //	             coverage monitor's state (nested), the forecasts
 //	             settled, hits and raw hits (int64), and the mean
@@ -265,7 +265,9 @@ func (a *Actor) Snapshot(seq uint64) ([]byte, error) {
 					w.f64(0)
 				}
 			} else {
-				w.floats(raw)
+				for _, v := range raw {
+					w.f64(float64(v)) // exact: a float32 widens without loss
+				}
 			}
 			w.floats(pub)
 		}
@@ -736,7 +738,15 @@ func (a *Actor) readState(r *snapReader, fs model.Snapshotter, version uint16) e
 				var latest pendingX
 				readPendingX(r, &latest, table)
 			}
-			r.floats(raw)
+			for k := range raw {
+				// Written from float32 this is exact; written by a build
+				// that kept them in float64, rounded.
+				v := r.f64()
+				if math.Abs(v) > math.MaxFloat32 && !math.IsInf(v, 0) {
+					r.fail("raw quantile %v out of range", v)
+				}
+				raw[k] = float32(v)
+			}
 			r.floats(pub)
 		}
 		a.pending.keys = append(a.pending.keys, key)
