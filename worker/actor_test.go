@@ -405,3 +405,58 @@ func TestCoverageReadout(t *testing.T) {
 		t.Error("the readout changed across a snapshot")
 	}
 }
+
+// TestRefreshIntoShared: sites that refresh one after the other into one
+// shared bundle (as a pool shard does) publish the same bytes as sites
+// that each keep their own bundle.
+func TestRefreshIntoShared(t *testing.T) {
+	sites := testSites()
+	cfg := Config{}.WithDefaults()
+	var own, shared [2]*Actor
+	var ins [2][]input
+	for k := range 2 {
+		own[k], _ = NewActor(sites[k], cfg)
+		shared[k], _ = NewActor(sites[k], cfg)
+		ins[k] = inputs(variedFeed(sites[k], 3, uint64(40+k)))
+	}
+	enc := stream.NewBundleEncoder()
+	var dst model.Bundle
+	var a, b bytes.Buffer
+	steps := 0
+	for i := 0; i < max(len(ins[0]), len(ins[1])); i++ {
+		for k := range 2 {
+			if i >= len(ins[k]) {
+				continue
+			}
+			for _, act := range []*Actor{own[k], shared[k]} {
+				if x := ins[k][i]; x.run != nil {
+					_ = act.Weather(x.run)
+				} else {
+					_ = act.Meter(x.reading)
+				}
+			}
+			bo, bs := own[k].Refresh(), shared[k].RefreshInto(&dst)
+			if (bo == nil) != (bs == nil) {
+				t.Fatalf("site %d input %d: bundles %v and %v", k, i, bo != nil, bs != nil)
+			}
+			if bo == nil {
+				continue
+			}
+			a.Reset()
+			b.Reset()
+			if err := enc.Encode(&a, bo); err != nil {
+				t.Fatal(err)
+			}
+			if err := enc.Encode(&b, bs); err != nil {
+				t.Fatal(err)
+			}
+			if !bytes.Equal(a.Bytes(), b.Bytes()) {
+				t.Fatalf("site %d input %d: the shared bundle encodes differently", k, i)
+			}
+			steps++
+		}
+	}
+	if steps < 100 {
+		t.Fatalf("only %d bundles compared", steps)
+	}
+}

@@ -79,6 +79,11 @@ type item struct {
 type shard struct {
 	q      chan item
 	actors map[string]*Actor
+	// bundle is the refreshed bundle of whichever site of the shard ran
+	// last (Actor.RefreshInto): an Output is done with a bundle when its
+	// call returns, so one per shard does, not one per site (about 40 KB
+	// a site with the default horizon and levels).
+	bundle model.Bundle
 	// Per site: the last stream sequence applied, and inputs applied
 	// since the last snapshot. Only the shard's goroutine touches them.
 	seq   map[string]uint64
@@ -307,13 +312,13 @@ func (p *Pool) apply(sh *shard, it item) {
 			p.reject(it.subject, it.site, len(it.data), err)
 		} else {
 			for _, in := range a.hold(heldInput{kind: it.kind, subject: it.subject, data: it.data, key: key}) {
-				if nb := p.applyInput(a, h, it.site, in.kind, in.subject, in.data, t0); nb != nil {
+				if nb := p.applyInput(sh, a, h, it.site, in.kind, in.subject, in.data, t0); nb != nil {
 					b = nb
 				}
 			}
 		}
 	} else {
-		b = p.applyInput(a, h, it.site, it.kind, it.subject, it.data, t0)
+		b = p.applyInput(sh, a, h, it.site, it.kind, it.subject, it.data, t0)
 	}
 	left := p.queued[it.site].Add(-1)
 	p.m.QueueDepth.Dec()
@@ -334,7 +339,7 @@ func (p *Pool) apply(sh *shard, it item) {
 // what the actor refuses, and refreshes the actor if anything was applied;
 // it publishes the alarm events and returns the bundle (nil if nothing was
 // applied).
-func (p *Pool) applyInput(a *Actor, h *siteHealth, site string, kind stream.InputKind, subject string, data []byte, t0 time.Time) *model.Bundle {
+func (p *Pool) applyInput(sh *shard, a *Actor, h *siteHealth, site string, kind stream.InputKind, subject string, data []byte, t0 time.Time) *model.Bundle {
 	applied := 0
 	switch kind {
 	case stream.InputWeather:
@@ -378,7 +383,7 @@ func (p *Pool) applyInput(a *Actor, h *siteHealth, site string, kind stream.Inpu
 	if applied == 0 {
 		return nil
 	}
-	b := a.Refresh()
+	b := a.RefreshInto(&sh.bundle)
 	for _, ev := range a.Events() {
 		p.m.AlarmEvents.WithLabelValues(ev.Kind, ev.State).Inc()
 		if ev.State == conformal.StateRaised {
