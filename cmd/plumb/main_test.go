@@ -64,6 +64,17 @@ func TestHelp(t *testing.T) {
 	if code, _, errOut := run(t, "replay", "--data", t.TempDir()); code != 1 || !strings.Contains(errOut, "sites.json") {
 		t.Errorf("replay of an empty folder: code %d, %q", code, errOut)
 	}
+	for _, bad := range [][]string{
+		{"--alarm-history", "50"},  // not beyond the recent half-life
+		{"--alarm-z", "-1"},        // not positive
+		{"--alarm-tolerance", "1"}, // not within (0, 1)
+		{"--alarm-recent", "0.5"},  // under one outcome
+	} {
+		code, _, errOut := run(t, append([]string{"demo", "--duration", "0"}, bad...)...)
+		if code == 0 || !strings.Contains(errOut, "conformal: alarm") {
+			t.Errorf("demo %v: code %d, %q; want a refusal naming the alarm option", bad, code, errOut)
+		}
+	}
 }
 
 // TestDemo runs the README's demo command (as fast as possible) and checks

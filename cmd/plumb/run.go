@@ -68,6 +68,8 @@ type workerFlags struct {
 	window     int
 	tolerance  float64
 	alarmZ     float64
+	alarmRec   float64
+	alarmHist  float64
 	shards     int
 	reorder    time.Duration
 }
@@ -82,6 +84,8 @@ func (w *workerFlags) register(fs *flag.FlagSet) {
 	fs.IntVar(&w.window, "coverage-window", 672, "settled forecasts per lead bucket and level over which the rolling coverage is taken (live summary, metrics, /coverage/<site>)")
 	fs.Float64Var(&w.tolerance, "alarm-tolerance", conformal.DefaultAlarmTolerance, "raise an alarm only when the recent coverage (weighted to the last 96 settled forecasts of a lead bucket and level: a day of 15-minute intervals) is at least this far from the level (coverage_off) or from the raw model's own history (raw_drift)")
 	fs.Float64Var(&w.alarmZ, "alarm-z", conformal.DefaultAlarmZ, "and only when that gap is at least this many times its usual spread at the site, lead bucket and level (larger: fewer alarms, later)")
+	fs.Float64Var(&w.alarmRec, "alarm-recent", conformal.DefaultAlarmRecent, "half-life, in settled forecasts of a lead bucket and level, of the recent coverage the alarms judge (96: a day of 15-minute meters; an hourly meter's day is 24)")
+	fs.Float64Var(&w.alarmHist, "alarm-history", conformal.DefaultAlarmReference, "half-life, in settled forecasts, of the longer-run coverage and of the usual spread the alarms compare with; no alarm changes state before a quarter of it has settled (2688: four weeks of 15-minute meters)")
 	fs.IntVar(&w.shards, "shards", 2, "goroutines the site actors are spread over")
 	fs.DurationVar(&w.reorder, "reorder-window", 0, "hold each input until one this much later in event time has come, and apply them in event-time order: inputs shuffled within the window (several meter gateways, retries) then give exactly the state inputs in order give, and bundles lag by the window (0: apply on arrival; at most 6h, the lateness)")
 }
@@ -105,15 +109,15 @@ func (w *workerFlags) config() (worker.Config, error) {
 		HorizonMinutes: int(w.horizon / time.Minute),
 		CoverageWindow: w.window,
 		Calibrator:     conformal.Options{Method: w.calibrator, Gamma: w.gamma},
-		Alarm:          conformal.AlarmOptions{Tolerance: w.tolerance, Z: w.alarmZ},
-		RawAlarm:       conformal.AlarmOptions{Tolerance: w.tolerance, Z: w.alarmZ, Kind: conformal.KindRawDrift},
+		Alarm:          conformal.AlarmOptions{Tolerance: w.tolerance, Z: w.alarmZ, Recent: w.alarmRec, Reference: w.alarmHist},
+		RawAlarm:       conformal.AlarmOptions{Tolerance: w.tolerance, Z: w.alarmZ, Recent: w.alarmRec, Reference: w.alarmHist, Kind: conformal.KindRawDrift},
 		Reorder:        w.reorder,
 	}
 	if _, err := conformal.New(0.5, cfg.Calibrator); err != nil {
 		return worker.Config{}, err
 	}
 	if _, err := conformal.NewAlarm(cfg.Alarm); err != nil {
-		return worker.Config{}, fmt.Errorf("--alarm-tolerance %v, --alarm-z %v: %w", w.tolerance, w.alarmZ, err)
+		return worker.Config{}, fmt.Errorf("--alarm-tolerance %v, --alarm-z %v, --alarm-recent %v, --alarm-history %v: %w", w.tolerance, w.alarmZ, w.alarmRec, w.alarmHist, err)
 	}
 	probe := model.Site{ID: "probe", Kind: model.KindWind, CapacityMW: 1}
 	if _, err := model.New(w.model, probe, model.DefaultBuckets()); err != nil {
