@@ -7,6 +7,7 @@ import (
 	"io"
 	"os"
 	"runtime"
+	"runtime/pprof"
 	"strconv"
 	"strings"
 	"syscall"
@@ -36,6 +37,7 @@ Examples:
   plumb bench --sites 1000 --duration 30s
   plumb bench --sites 10000 --speed 600 --duration 60s --json bench.json
   plumb bench --sites 10000 --backlog 1000000
+  plumb bench --sites 5000 --duration 30s --cpu-profile cpu.prof   # then: go tool pprof -top cpu.prof
 `
 
 // BenchResult is the JSON output of plumb bench.
@@ -63,6 +65,7 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		modelName  = fs.String("model", "stack", "forecaster of the in-process worker: "+strings.Join(model.Names(), ", "))
 		jsonOut    = fs.String("json", "", "also write the result as JSON to this `file`")
 		writeSites = fs.String("write-sites", "", "write the invented site registry to this `file` and exit")
+		cpuProfile = fs.String("cpu-profile", "", "write a CPU profile of this process over the load or the catch-up to this `file` (read it with: go tool pprof -top <file>)")
 	)
 	conn.register(fs, "", "load an external worker at this NATS `URL` (default: a worker in this process)")
 	if err := parse(fs, args); err != nil {
@@ -81,6 +84,15 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 			return err
 		}
 		return os.WriteFile(*writeSites, data, 0o644)
+	}
+	var profFile *os.File // the CPU profile, created before any load starts
+	if *cpuProfile != "" {
+		f, err := os.Create(*cpuProfile)
+		if err != nil {
+			return fmt.Errorf("--cpu-profile: %w", err)
+		}
+		defer f.Close()
+		profFile = f
 	}
 	o := loadgen.Options{Sites: *sites, Speed: *speed, Duration: *duration, Warmup: *warmup}
 	o.Progress = func(p loadgen.Progress) {
@@ -114,8 +126,12 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		}
 		if *backlog > 0 {
 			fmt.Fprintf(stderr, "catch-up: publishing %d readings of %d sites before the worker starts\n", *backlog, *sites)
+			if err := startProfile(profFile); err != nil {
+				return err
+			}
 			cpu0 := cpuSeconds()
 			r, err := loadgen.CatchUp(ctx, wnc, pool, o, *backlog)
+			stopProfile(profFile)
 			if err != nil {
 				return err
 			}
@@ -146,8 +162,12 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	defer sub.Close()
 	fmt.Fprintf(stderr, "load: %d sites, %.0f readings/s, %s (first %s not timed)\n",
 		*sites, float64(*sites)**speed/900, *duration, *warmup)
+	if err := startProfile(profFile); err != nil {
+		return err
+	}
 	cpu0, t0 := cpuSeconds(), time.Now()
 	r, err := loadgen.Run(ctx, pub, sub, o)
+	stopProfile(profFile)
 	if err != nil {
 		return err
 	}
@@ -159,6 +179,24 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	}
 	finishBench(stdout, &res, *sites, *jsonOut)
 	return nil
+}
+
+// startProfile starts the CPU profile into f, if not nil (--cpu-profile).
+func startProfile(f *os.File) error {
+	if f == nil {
+		return nil
+	}
+	if err := pprof.StartCPUProfile(f); err != nil {
+		return fmt.Errorf("--cpu-profile: %w", err)
+	}
+	return nil
+}
+
+// stopProfile stops the CPU profile started by startProfile.
+func stopProfile(f *os.File) {
+	if f != nil {
+		pprof.StopCPUProfile()
+	}
 }
 
 func finishBench(w io.Writer, res *BenchResult, sites int, jsonOut string) {

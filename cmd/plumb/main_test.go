@@ -2,6 +2,7 @@ package main
 
 import (
 	"bytes"
+	"compress/gzip"
 	"context"
 	"encoding/json"
 	"io"
@@ -289,5 +290,52 @@ func TestAlarmLine(t *testing.T) {
 	want := "ALARM raised  2026-03-16T17:45:00Z pv-heron-flats raw_drift level 0.10 lead 0h-1h: raw model coverage moved"
 	if got := alarmLine(e); got != want {
 		t.Errorf("alarmLine =\n%q, want\n%q", got, want)
+	}
+}
+
+// TestBenchCommand runs a short plumb bench on the embedded server with its
+// JSON result and CPU profile, and checks that readings went in, bundles
+// came out, and the profile is a gzip stream (the format runtime/pprof
+// writes and go tool pprof reads).
+func TestBenchCommand(t *testing.T) {
+	if testing.Short() {
+		t.Skip("a few seconds of load")
+	}
+	dir := t.TempDir()
+	jsonOut, prof := filepath.Join(dir, "bench.json"), filepath.Join(dir, "cpu.prof")
+	code, out, errOut := run(t, "bench", "--sites", "20", "--duration", "3s", "--warmup", "1s",
+		"--model", "baseline", "--json", jsonOut, "--cpu-profile", prof)
+	if code != 0 {
+		t.Fatalf("bench: code %d\nstdout %s\nstderr %s", code, out, errOut)
+	}
+	if !strings.Contains(out, "latency publish -> bundle") {
+		t.Errorf("bench output lacks the latency line:\n%s", out)
+	}
+	data, err := os.ReadFile(jsonOut)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var res BenchResult
+	if err := json.Unmarshal(data, &res); err != nil {
+		t.Fatalf("bench JSON: %v", err)
+	}
+	if res.Load == nil || res.Load.Readings == 0 || res.Load.Bundles == 0 || res.Load.LatencyN == 0 {
+		t.Errorf("bench result shows no traffic: %+v", res.Load)
+	}
+	f, err := os.Open(prof)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	zr, err := gzip.NewReader(f)
+	if err != nil {
+		t.Fatalf("CPU profile is not gzip: %v", err)
+	}
+	n, err := io.Copy(io.Discard, zr)
+	if err != nil || n == 0 {
+		t.Errorf("CPU profile: %d bytes, %v", n, err)
+	}
+	if code, _, errOut := run(t, "bench", "--sites", "2", "--duration", "1s", "--cpu-profile", filepath.Join(dir, "no", "such", "dir", "p")); code == 0 || !strings.Contains(errOut, "--cpu-profile") {
+		t.Errorf("bench with an unwritable profile: code %d, %q", code, errOut)
 	}
 }
