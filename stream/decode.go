@@ -128,22 +128,28 @@ func (d *Decoder) powerFactor() float64 {
 // each row's site only needs to be known. Readings come back in message
 // order, times in UTC. Every error is a *RejectError.
 func (d *Decoder) Meter(subjectSite string, data []byte) ([]model.Reading, error) {
+	return d.meter(subjectSite, data, true)
+}
+
+// meter is Meter. With fast set, plain input is read by scratch.meterRows
+// (see scan.go); otherwise, and whenever that gives up, by meterRowsJSON.
+// Both give the same rows, so everything after is common.
+func (d *Decoder) meter(subjectSite string, data []byte, fast bool) ([]model.Reading, error) {
 	if err := d.precheck(subjectSite, data); err != nil {
 		return nil, err
 	}
+	sc := getScratch()
+	defer putScratch(sc)
 	var rows []meterWire
-	switch firstByte(data) {
-	case '{':
-		rows = make([]meterWire, 1)
-		if err := json.Unmarshal(data, &rows[0]); err != nil {
-			return nil, jsonReject(subjectSite, data, err)
+	ok := false
+	if fast {
+		rows, ok = sc.meterRows(data, d.maxRows())
+	}
+	if !ok {
+		var rerr *RejectError
+		if rows, rerr = meterRowsJSON(subjectSite, data); rerr != nil {
+			return nil, rerr
 		}
-	case '[':
-		if err := json.Unmarshal(data, &rows); err != nil {
-			return nil, jsonReject(subjectSite, data, err)
-		}
-	default:
-		return nil, notObject(subjectSite)
 	}
 	batch := firstByte(data) == '['
 	if err := d.checkRows(subjectSite, len(rows)); err != nil {
@@ -170,6 +176,26 @@ func (d *Decoder) Meter(subjectSite string, data []byte) ([]model.Reading, error
 				lo.Format(time.RFC3339), hi.Format(time.RFC3339))}
 	}
 	return out, nil
+}
+
+// meterRowsJSON reads the rows of a meter message with encoding/json; it
+// takes any input and maps every JSON fault to its reject.
+func meterRowsJSON(subj string, data []byte) ([]meterWire, *RejectError) {
+	var rows []meterWire
+	switch firstByte(data) {
+	case '{':
+		rows = make([]meterWire, 1)
+		if err := json.Unmarshal(data, &rows[0]); err != nil {
+			return nil, jsonReject(subj, data, err)
+		}
+	case '[':
+		if err := json.Unmarshal(data, &rows); err != nil {
+			return nil, jsonReject(subj, data, err)
+		}
+	default:
+		return nil, notObject(subj)
+	}
+	return rows, nil
 }
 
 // meterWire is one meter row as sent. The custom field types record what
@@ -238,55 +264,113 @@ func (d *Decoder) meterRow(r *model.Reading, subj string, at rowRef, w *meterWir
 // one run may not overlap. The site rule is that of Meter. Times are in UTC.
 // Every error is a *RejectError.
 func (d *Decoder) Weather(subjectSite string, data []byte) ([]model.WeatherRun, error) {
+	return d.weather(subjectSite, data, true)
+}
+
+// weather is Weather. With fast set, plain input is read by
+// scratch.weatherFields (see scan.go); otherwise, and whenever that gives
+// up, by scratch.weatherFieldsJSON. Both give the same fields, so
+// everything after is common.
+func (d *Decoder) weather(subjectSite string, data []byte, fast bool) ([]model.WeatherRun, error) {
 	if err := d.precheck(subjectSite, data); err != nil {
 		return nil, err
 	}
+	sc := getScratch()
+	defer putScratch(sc)
+	if !fast || !sc.weatherFields(data, d.maxRows()) {
+		if rerr := sc.weatherFieldsJSON(subjectSite, data); rerr != nil {
+			return nil, rerr
+		}
+	}
+	batch := firstByte(data) == '['
+	if err := d.checkRows(subjectSite, len(sc.fields)); err != nil {
+		return nil, err
+	}
+
+	rows := slices.Grow(sc.rows[:0], len(sc.fields))[:len(sc.fields)]
+	vals := sc.vals[:0] // the variables of every row, row after row
+	for i := range sc.fields {
+		r := &rows[i]
+		*r = weatherRow{from: len(vals)}
+		var rerr *RejectError
+		if vals, rerr = d.weatherRow(r, subjectSite, rowOf(batch, i), &sc.fields[i], sc, vals); rerr != nil {
+			return nil, rerr
+		}
+		r.to = len(vals)
+	}
+	sc.rows, sc.vals = rows, vals
+	return groupRuns(rows, vals)
+}
+
+// rowFields is one weather row as sent: the raw JSON value of each field,
+// nil when the field is absent. vars holds the other fields, the weather
+// variables, sorted by name; the names are distinct.
+type rowFields struct {
+	site, issuedAt, source, validStart, validMinutes []byte
+	vars                                             []rawVar
+}
+
+type rawVar struct {
+	name string
+	raw  []byte
+}
+
+// weatherFieldsJSON reads the rows of a weather message with encoding/json
+// into sc.fields; it takes any input and maps every JSON fault to its
+// reject. A field given twice keeps its last value, as encoding/json does
+// for maps.
+func (sc *scratch) weatherFieldsJSON(subj string, data []byte) *RejectError {
 	var objs []map[string]json.RawMessage
 	switch firstByte(data) {
 	case '{':
 		objs = make([]map[string]json.RawMessage, 1)
 		if err := json.Unmarshal(data, &objs[0]); err != nil {
-			return nil, jsonReject(subjectSite, data, err)
+			return jsonReject(subj, data, err)
 		}
 	case '[':
 		if err := json.Unmarshal(data, &objs); err != nil {
-			return nil, jsonReject(subjectSite, data, err)
+			return jsonReject(subj, data, err)
 		}
 	default:
-		return nil, notObject(subjectSite)
+		return notObject(subj)
 	}
-	batch := firstByte(data) == '['
-	if err := d.checkRows(subjectSite, len(objs)); err != nil {
-		return nil, err
-	}
-
-	rows := make([]weatherRow, len(objs))
-	var vals []namedValue // the variables of every row, row after row
-	var keys []string     // scratch: one row's variable names, sorted
-	for i, obj := range objs {
-		at := rowOf(batch, i)
-		r := &rows[i]
-		r.index = i
-		r.from = len(vals)
-		var rerr *RejectError
-		if vals, keys, rerr = d.weatherRow(r, subjectSite, at, obj, vals, keys); rerr != nil {
-			return nil, rerr
+	fields, vars := sc.fields[:0], sc.vars[:0]
+	for _, obj := range objs {
+		f := rowFields{site: obj["site"], issuedAt: obj["issued_at"], source: obj["source"],
+			validStart: obj["valid_start"], validMinutes: obj["valid_minutes"]}
+		from := len(vars)
+		for k, raw := range obj {
+			switch k {
+			case "site", "issued_at", "source", "valid_start", "valid_minutes":
+			default:
+				vars = append(vars, rawVar{name: k, raw: raw})
+			}
 		}
-		r.to = len(vals)
+		f.vars = sortVars(vars[from:])
+		fields = append(fields, f)
 	}
-	return groupRuns(rows, vals)
+	sc.fields, sc.vars = fields, vars
+	return nil
+}
+
+// sortVars sorts one row's variables by name and returns them, capped so
+// that appending to the shared slice they come from cannot touch them.
+func sortVars(vars []rawVar) []rawVar {
+	slices.SortFunc(vars, func(a, b rawVar) int { return strings.Compare(a.name, b.name) })
+	return vars[:len(vars):len(vars)]
 }
 
 // weatherRow is one decoded weather row before grouping; its variables are
-// vals[from:to] of the shared slice, sorted by name.
+// vals[from:to] of the shared slice, sorted by name. run is set by
+// groupRuns.
 type weatherRow struct {
-	index    int
 	site     string
 	issued   time.Time
 	source   string
 	start    time.Time
 	minutes  int
 	from, to int
+	run      int
 }
 
 type namedValue struct {
@@ -294,125 +378,143 @@ type namedValue struct {
 	value float64
 }
 
-func (d *Decoder) weatherRow(r *weatherRow, subj string, at rowRef, obj map[string]json.RawMessage,
-	vals []namedValue, keys []string) ([]namedValue, []string, *RejectError) {
-	raw, ok := obj["site"]
+// weatherRow checks one row's fields and decodes them into r, appending
+// its variables to vals. sc interns the strings.
+func (d *Decoder) weatherRow(r *weatherRow, subj string, at rowRef, f *rowFields, sc *scratch,
+	vals []namedValue) ([]namedValue, *RejectError) {
 	site, isStr := "", false
-	if ok && !isNull(raw) {
-		if site, isStr = jsonString(raw); !isStr {
-			return vals, keys, wrongType(subj, at, "site", "a string")
+	if f.site != nil && !isNull(f.site) {
+		if site, isStr = sc.str(f.site); !isStr {
+			return vals, wrongType(subj, at, "site", "a string")
 		}
 	}
 	if _, rerr := d.rowSite(subj, at, site, isStr); rerr != nil {
-		return vals, keys, rerr
+		return vals, rerr
 	}
 	r.site = site
 
 	var rerr *RejectError
-	if r.issued, rerr = rawTime(obj["issued_at"]).get(site, at, "issued_at"); rerr != nil {
-		return vals, keys, rerr
+	if r.issued, rerr = rawTime(f.issuedAt).get(site, at, "issued_at"); rerr != nil {
+		return vals, rerr
 	}
-	if raw, ok := obj["source"]; ok && !isNull(raw) {
-		if r.source, ok = jsonString(raw); !ok {
-			return vals, keys, wrongType(site, at, "source", "a string")
+	if f.source != nil && !isNull(f.source) {
+		var ok bool
+		if r.source, ok = sc.str(f.source); !ok {
+			return vals, wrongType(site, at, "source", "a string")
 		}
 	}
-	if r.start, rerr = rawTime(obj["valid_start"]).get(site, at, "valid_start"); rerr != nil {
-		return vals, keys, rerr
+	if r.start, rerr = rawTime(f.validStart).get(site, at, "valid_start"); rerr != nil {
+		return vals, rerr
 	}
-	if r.minutes, rerr = rawNum(obj["valid_minutes"]).minutes(site, at, "valid_minutes"); rerr != nil {
-		return vals, keys, rerr
+	if r.minutes, rerr = rawNum(f.validMinutes).minutes(site, at, "valid_minutes"); rerr != nil {
+		return vals, rerr
 	}
 	if rerr = checkAligned(site, at, "valid_start", r.start, r.minutes); rerr != nil {
-		return vals, keys, rerr
+		return vals, rerr
 	}
 	if lead := r.start.Sub(r.issued); lead < -maxValidBefore || lead > maxValidAfter {
-		return vals, keys, &RejectError{Reason: ReasonBadTime, Site: site,
+		return vals, &RejectError{Reason: ReasonBadTime, Site: site,
 			Detail: fmt.Sprintf("%svalid_start %s is %.2f days from issued_at %s, outside -10 to +16 days",
 				at, r.start.Format(time.RFC3339), lead.Hours()/24, r.issued.Format(time.RFC3339))}
 	}
 
-	keys = keys[:0]
-	for k := range obj {
-		switch k {
-		case "site", "issued_at", "source", "valid_start", "valid_minutes":
-		default:
-			keys = append(keys, k)
-		}
-	}
-	if len(keys) == 0 {
-		return vals, keys, &RejectError{Reason: ReasonMissingField, Site: site,
+	if len(f.vars) == 0 {
+		return vals, &RejectError{Reason: ReasonMissingField, Site: site,
 			Detail: at.String() + "no weather variable"}
 	}
-	slices.Sort(keys)
-	for _, k := range keys {
+	for _, kv := range f.vars {
+		k := kv.name
 		if !validVarName(k) {
-			return vals, keys, &RejectError{Reason: ReasonMalformed, Site: site,
+			return vals, &RejectError{Reason: ReasonMalformed, Site: site,
 				Detail: fmt.Sprintf("%sfield %s is not a weather variable name (lowercase <quantity>_<unit>)", at, quote(k))}
 		}
-		n := rawNum(obj[k])
+		n := rawNum(kv.raw)
 		v := math.NaN()
 		if n.st != stNull {
 			var rerr *RejectError
 			if v, rerr = n.get(site, at, k, true); rerr != nil {
-				return vals, keys, rerr
+				return vals, rerr
 			}
 			if lo, hi, known := varRange(k); known && (v < lo || v > hi) {
-				return vals, keys, &RejectError{Reason: ReasonOutOfRange, Site: site,
+				return vals, &RejectError{Reason: ReasonOutOfRange, Site: site,
 					Detail: fmt.Sprintf("%s%s %v outside the plausible range [%v, %v]", at, k, v, lo, hi)}
 			}
 		}
 		vals = append(vals, namedValue{name: k, value: v})
 	}
-	return vals, keys, nil
+	return vals, nil
 }
 
 // groupRuns gathers decoded rows into runs and checks that the valid
-// intervals of each run do not overlap.
+// intervals of each run do not overlap. It allocates only what it returns
+// and a little bookkeeping per run, not per row.
 func groupRuns(rows []weatherRow, vals []namedValue) ([]model.WeatherRun, error) {
 	type key struct {
 		site   string
 		issued int64
 		source string
 	}
-	index := make(map[key]int)
-	var members [][]int // row indices of each run
-	var runs []model.WeatherRun
+	type tally struct {
+		key     key
+		rows    int
+		backing []float64 // the run's values, row after row
+	}
+	var (
+		runs    []model.WeatherRun
+		tallies []tally     // of each run
+		index   map[key]int // run of each key, made when a second run appears
+		last    = -1        // run of the previous row
+	)
 	for i := range rows {
 		r := &rows[i]
 		k := key{r.site, r.issued.UnixNano(), r.source}
-		j, ok := index[k]
-		if !ok {
-			j = len(runs)
-			index[k] = j
-			runs = append(runs, model.WeatherRun{Site: r.site, IssuedAt: r.issued, Source: r.source})
-			members = append(members, nil)
+		j := last
+		if j < 0 || tallies[j].key != k {
+			var ok bool
+			if j, ok = index[k]; !ok {
+				j = len(runs)
+				runs = append(runs, model.WeatherRun{Site: r.site, IssuedAt: r.issued, Source: r.source})
+				tallies = append(tallies, tally{key: k})
+				if j == 1 {
+					index = map[key]int{tallies[0].key: 0}
+				}
+				if index != nil {
+					index[k] = j
+				}
+			}
+			last = j
 		}
-		members[j] = append(members[j], i)
+		r.run = j
+		tallies[j].rows++
 		runs[j].Vars = unionSorted(runs[j].Vars, vals[r.from:r.to])
 	}
 
 	for j := range runs {
-		run := &runs[j]
-		nv := len(run.Vars)
-		backing := make([]float64, len(members[j])*nv)
-		for i := range backing {
-			backing[i] = math.NaN()
+		t := &tallies[j]
+		t.backing = make([]float64, t.rows*len(runs[j].Vars))
+		for i := range t.backing {
+			t.backing[i] = math.NaN()
 		}
-		run.Rows = make([]model.WeatherRow, len(members[j]))
-		for m, ri := range members[j] {
-			r := &rows[ri]
-			values := backing[m*nv : (m+1)*nv : (m+1)*nv]
-			// Both lists are sorted: walk them together.
-			v := 0
-			for _, nvv := range vals[r.from:r.to] {
-				for run.Vars[v] != nvv.name {
-					v++
-				}
-				values[v] = nvv.value
+		runs[j].Rows = make([]model.WeatherRow, 0, t.rows)
+	}
+	for i := range rows { // in message order, as the stable sort below expects
+		r := &rows[i]
+		run := &runs[r.run]
+		nv, m := len(run.Vars), len(run.Rows)
+		values := tallies[r.run].backing[m*nv : (m+1)*nv : (m+1)*nv]
+		// Both lists are sorted: walk them together.
+		v := 0
+		for _, nvv := range vals[r.from:r.to] {
+			for run.Vars[v] != nvv.name {
+				v++
 			}
-			run.Rows[m] = model.WeatherRow{ValidStart: r.start, ValidMinutes: r.minutes, Values: values}
+			values[v] = nvv.value
 		}
+		run.Rows = append(run.Rows, model.WeatherRow{ValidStart: r.start, ValidMinutes: r.minutes, Values: values})
+	}
+
+	for j := range runs {
+		run := &runs[j]
 		slices.SortStableFunc(run.Rows, func(a, b model.WeatherRow) int { return a.ValidStart.Compare(b.ValidStart) })
 		for i := 1; i < len(run.Rows); i++ {
 			prev, cur := &run.Rows[i-1], &run.Rows[i]
@@ -754,15 +856,20 @@ type wireString struct {
 
 // UnmarshalJSON implements json.Unmarshaler; it never fails.
 func (w *wireString) UnmarshalJSON(b []byte) error {
-	switch s, ok := jsonString(b); {
-	case ok:
-		*w = wireString{s: s, st: stOK}
-	case isNull(b):
-		*w = wireString{st: stNull}
-	default:
-		*w = wireString{st: stWrongType}
-	}
+	*w = rawString(nil, b)
 	return nil
+}
+
+// rawString reads one JSON value as a string field, interned by sc when
+// not nil.
+func rawString(sc *scratch, b []byte) wireString {
+	switch s, ok := sc.str(b); {
+	case ok:
+		return wireString{s: s, st: stOK}
+	case isNull(b):
+		return wireString{st: stNull}
+	}
+	return wireString{st: stWrongType}
 }
 
 // wireBool is a JSON boolean field that records what it saw.
@@ -806,10 +913,11 @@ func rawTime(b []byte) wireTime {
 	case 'n':
 		return wireTime{st: stNull}
 	case '"':
-		s, _ := jsonString(b)
-		t, err := time.Parse(time.RFC3339, s)
+		text, _ := jsonText(b)
+		// string(text) does not allocate: time.Parse keeps no reference.
+		t, err := time.Parse(time.RFC3339, string(text))
 		if err != nil {
-			return wireTime{st: stBadTime, raw: s}
+			return wireTime{st: stBadTime, raw: string(text)}
 		}
 		return wireTime{t: t.UTC(), st: stOK}
 	}
@@ -838,18 +946,26 @@ func (w wireTime) get(site string, at rowRef, field string) (time.Time, *RejectE
 func isNull(b []byte) bool { return len(b) > 0 && b[0] == 'n' }
 
 // jsonString returns the text of a raw JSON string value (valid JSON, as
-// handed out by encoding/json), and false when the value is not a string.
+// handed out by encoding/json or jsontext), and false when the value is not
+// a string.
 func jsonString(b []byte) (string, bool) {
+	text, ok := jsonText(b)
+	return string(text), ok
+}
+
+// jsonText is jsonString without the conversion: it returns b's own bytes
+// when the string has no escape, else a decoded copy.
+func jsonText(b []byte) ([]byte, bool) {
 	if len(b) < 2 || b[0] != '"' {
-		return "", false
+		return nil, false
 	}
 	body := b[1 : len(b)-1]
 	if !slices.Contains(body, '\\') {
-		return string(body), true
+		return body, true
 	}
 	var s string
 	if err := json.Unmarshal(b, &s); err != nil {
-		return "", false
+		return nil, false
 	}
-	return s, true
+	return []byte(s), true
 }

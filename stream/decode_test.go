@@ -553,6 +553,31 @@ func TestRejectDetailIsDeterministic(t *testing.T) {
 	}
 }
 
+// TestWeatherOverlapDetail pins the wording of interval faults: rows of a
+// run are compared in ValidStart order, rows with equal starts in message
+// order, and runs in the order of their first row. The details are those
+// the decoder gave before groupRuns was rewritten to allocate per run
+// instead of per row.
+func TestWeatherOverlapDetail(t *testing.T) {
+	cases := []struct{ data, detail string }{
+		{"[" + wrow("valid_minutes", "60") + "," + wrow("valid_minutes", "30") + "]",
+			`run issued at 2026-03-01T06:00:00Z, source "nwp-1": valid intervals starting 2026-03-01T10:00:00Z (60 min) and 2026-03-01T10:00:00Z (30 min) repeat`},
+		{"[" + wrow("valid_minutes", "30") + "," + wrow("valid_minutes", "60") + "]",
+			`run issued at 2026-03-01T06:00:00Z, source "nwp-1": valid intervals starting 2026-03-01T10:00:00Z (30 min) and 2026-03-01T10:00:00Z (60 min) repeat`},
+		{"[" + wrow("valid_start", `"2026-03-01T11:00:00Z"`) + "," + wrow("source", `"nwp-2"`, "valid_minutes", "30") + "," +
+			wrow("source", `"nwp-2"`, "valid_start", `"2026-03-01T10:15:00Z"`, "valid_minutes", "15") + "," + wrow() + "," +
+			wrow("valid_start", `"2026-03-01T10:30:00Z"`, "valid_minutes", "30") + "]",
+			`run issued at 2026-03-01T06:00:00Z, source "nwp-1": valid intervals starting 2026-03-01T10:00:00Z (60 min) and 2026-03-01T10:30:00Z (30 min) overlap`},
+	}
+	for _, tc := range cases {
+		_, err := testDecoder().Weather("pv-a", []byte(tc.data))
+		var re *RejectError
+		if !errors.As(err, &re) || re.Reason != ReasonBadInterval || re.Detail != tc.detail {
+			t.Errorf("%s:\n%v\nwant bad_interval: %s", tc.data, err, tc.detail)
+		}
+	}
+}
+
 func BenchmarkMeter(b *testing.B) {
 	// One day of 15-minute readings in one message.
 	var sb strings.Builder
@@ -577,8 +602,9 @@ func BenchmarkMeter(b *testing.B) {
 	}
 }
 
-func BenchmarkWeather(b *testing.B) {
-	// One run of 48 hourly rows with 8 variables.
+// weatherBenchMessage is the message of BenchmarkWeather: one run of 48
+// hourly rows with 8 variables.
+func weatherBenchMessage() []byte {
 	var sb strings.Builder
 	sb.WriteByte('[')
 	start := utc("2026-03-01T00:00:00Z")
@@ -591,7 +617,11 @@ func BenchmarkWeather(b *testing.B) {
 			start.Add(time.Duration(i)*time.Hour).Format(time.RFC3339), 400+100*math.Sin(float64(i)))
 	}
 	sb.WriteByte(']')
-	data := []byte(sb.String())
+	return []byte(sb.String())
+}
+
+func BenchmarkWeather(b *testing.B) {
+	data := weatherBenchMessage()
 	dec := testDecoder()
 	b.SetBytes(int64(len(data)))
 	b.ReportAllocs()
@@ -752,13 +782,14 @@ func FuzzMeter(f *testing.F) {
 		f.Add([]byte(s), false)
 		f.Add([]byte(s), true)
 	}
+	addGenerated(f, genMeterRows, meterMutations)
 	dec := testDecoder()
 	f.Fuzz(func(t *testing.T, data []byte, noSubject bool) {
 		subj := "pv-a"
 		if noSubject {
 			subj = ""
 		}
-		got, err := dec.Meter(subj, data)
+		_, got, err := checkMeterPaths(t, dec, subj, data) // both readers agree
 		if err != nil {
 			var re *RejectError
 			if !errors.As(err, &re) || re.Reason == "" || got != nil {
@@ -794,13 +825,14 @@ func FuzzWeather(f *testing.F) {
 		f.Add([]byte(s), false)
 		f.Add([]byte(s), true)
 	}
+	addGenerated(f, genWeatherRows, weatherMutations)
 	dec := testDecoder()
 	f.Fuzz(func(t *testing.T, data []byte, noSubject bool) {
 		subj := "pv-a"
 		if noSubject {
 			subj = ""
 		}
-		got, err := dec.Weather(subj, data)
+		_, got, err := checkWeatherPaths(t, dec, subj, data) // both readers agree
 		if err != nil {
 			var re *RejectError
 			if !errors.As(err, &re) || re.Reason == "" || got != nil {
