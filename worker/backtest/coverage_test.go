@@ -21,6 +21,31 @@ func maxCoverageError(levels []float64, v View) []float64 {
 	return out
 }
 
+// offWindows returns the share of the rolling windows of w days (of the
+// days with outcomes) in which central interval k covers more than tol
+// away from nominal, and the number of windows.
+func offWindows(days []Day, k int, nominal float64, w int, tol float64) (float64, int) {
+	off, n := 0, 0
+	for i := w - 1; i < len(days); i++ {
+		hits, cnt := 0, 0
+		for _, d := range days[i-w+1 : i+1] {
+			hits += d.IntervalHits[k]
+			cnt += d.N
+		}
+		if cnt == 0 {
+			continue
+		}
+		n++
+		if math.Abs(float64(hits)/float64(cnt)-nominal) > tol {
+			off++
+		}
+	}
+	if n == 0 {
+		return 0, 0
+	}
+	return float64(off) / float64(n), n
+}
+
 // TestCalibratedCoverageOpenData holds the default calibrator (aci on the
 // stack) to the calibration issue's long-run targets on open data without
 // injected drift: over every forecast issued (the intraday view), the
@@ -38,6 +63,16 @@ func maxCoverageError(levels []float64, v View) []float64 {
 // two months) over the scored period (measured: 1 to 5 a year) (the per-site alarms of an exponentially weighted chart,
 // conformal.Alarm). The window-based alarms it replaced raised each kind
 // more than a hundred times a year per site here.
+//
+// It also measures how far the calibrated 80 % and 90 % central intervals
+// stray over rolling 3-day windows on this clean data (the drift criterion
+// of the calibration issue asks for 5 points within 3 days of a change):
+// the weather's errors are shared by all the forecasts of a day, so a
+// calibrated forecast's 3-day coverage strays by 6 to 9 points (standard
+// deviation) and a third to a half of the windows are more than 5 points
+// off with no change at all. It holds that share above 15 % for the 80 %
+// interval, the ground on which TestDriftRecovery compares each scenario
+// with its clean history rather than with the target.
 func TestCalibratedCoverageOpenData(t *testing.T) {
 	if testing.Short() {
 		t.Skip("backtests of a year of solar and three years of wind")
@@ -76,6 +111,16 @@ func TestCalibratedCoverageOpenData(t *testing.T) {
 				t.Logf("%s %s: %d raised in %.2f years", a.Site, a.Kind, a.Raised, years)
 				if float64(a.Raised) > 6*years {
 					t.Errorf("%s: %d %s alarms raised in %.2f years of clean data, more than 6 a year", a.Site, a.Raised, a.Kind, years)
+				}
+			}
+			for k, iv := range cal.Intraday.All.Intervals {
+				if iv.Nominal < 0.8 {
+					continue
+				}
+				off, n := offWindows(cal.Daily, k, iv.Nominal, 3, 0.05)
+				t.Logf("%.0f %% interval: coverage %.4f; %.0f %% of the %d rolling 3-day windows more than 5 points off", 100*iv.Nominal, iv.Coverage, 100*off, n)
+				if iv.Nominal == 0.8 && off < 0.15 {
+					t.Errorf("only %.0f %% of the 3-day windows of the 80 %% interval are more than 5 points off: the drift criterion of 3-day windows within 5 points may now be reachable; revisit TestDriftRecovery and the README", 100*off)
 				}
 			}
 			pc, pr := cal.Intraday.All.Pinball, raw.Intraday.All.Pinball

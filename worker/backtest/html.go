@@ -881,7 +881,7 @@ td.best,td.flag,thead th,tr.main th.name{-webkit-print-color-adjust:exact;print-
 <section id="read">
 <h2>{{index .Heads "read"}}</h2>
 <ul class="read">
-<li><strong>Coverage</strong> of a level is the share of outcomes at or below the forecast quantile of that level; its target is the level itself (0.9 quantile: 90&#160;% of outcomes at or below it). The coverage of a central interval is the share of outcomes inside it; its target is the interval's nominal size.</li>
+<li><strong>Coverage</strong> of a level is the share of outcomes at or below the forecast quantile of that level; its target is the level itself (0.9 quantile: 90&#160;% of outcomes at or below it). The coverage of a central interval is the share of outcomes inside it; its target is the interval's nominal size. An outcome equal to several quantiles (a calm hour or a clipped night, where the forecast has a point mass) counts as at or below each of them, or inside an interval, by a random draw of its place in that mass (the randomised PIT), so that a calibrated forecast covers at its target.</li>
 <li><strong>Reliability diagram and PIT histogram:</strong> a calibrated forecast lies on the diagonal and gives a flat PIT histogram. Pooled over many sites and leads, a small deviation can be significant; look at the coverage tests per site.</li>
 <li><strong>Pinball loss and CRPS</strong> (in MW) reward forecasts that are both calibrated and sharp; lower is better. CRPS here is twice the mean pinball loss over the levels.</li>
 <li><strong>Skill</strong> is 1 − pinball / climatology's pinball on the same forecasts: above 0 the variant beats climatology.</li>
