@@ -46,6 +46,12 @@ type Outcome struct {
 	// PIT is the raw forecast's cumulative probability at Y (0..1),
 	// interpolated on its grid of levels; NaN when unknown.
 	PIT float64
+	// Lag is how many updates this calibrator took between the issue of
+	// the forecast and this outcome: 0 when none (the zero value), a
+	// negative number when unknown. Only calibrators whose state moves per
+	// expert need it (DtACI judges each expert at the miss rate it had at
+	// issue); the others ignore it.
+	Lag int
 }
 
 // Hit reports whether the outcome lies at or below the issued quantile.

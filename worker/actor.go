@@ -143,6 +143,7 @@ type pendingX struct {
 	validStart                       time.Time
 	lead                             int
 	issued                           int32 // forecasts issued for the interval in the bucket so far
+	settledAt                        int32 // the bucket's settlements at issue (conformal.Outcome.Lag); -1 unknown
 	avail, driver, runAge, lastPower float64
 	night                            bool
 	row                              *model.WeatherRow // Features.Weather
@@ -619,7 +620,11 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 			if y == issued && !hit {
 				issued = math.Nextafter(y, math.Inf(-1))
 			}
-			c.cal.Update(conformal.Outcome{Y: y, Issued: issued, PIT: pit})
+			lag := -1
+			if px.settledAt >= 0 {
+				lag = c.settled - int(px.settledAt)
+			}
+			c.cal.Update(conformal.Outcome{Y: y, Issued: issued, PIT: pit, Lag: lag})
 			if c.corr != nil {
 				l, o := c.corr.Correction()
 				if c.settled == 0 {
@@ -1025,6 +1030,7 @@ func (a *Actor) RefreshInto(dst *model.Bundle) *model.Bundle {
 		a.features(x, t, lead, bucket, step)
 		if !stays {
 			keep(px, x, a.xRun)
+			px.settledAt = int32(a.cells[bucket*nl].settled)
 		}
 		px.issued = issued + 1
 		row := b.Row(i)

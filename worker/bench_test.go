@@ -210,8 +210,11 @@ const wantFingerprint = "2c84685e858e48b19dd343874bbb080fd341ba4fb06517763327275
 // the alarms changed and the residual windows came to hold float32 (as
 // wantFingerprint), and when the pending records' raw quantiles came to be
 // kept in float32 (the raw PIT dtaci's experts learn from moves by about
-// 1e-7; wantFingerprint, with aci, did not change).
-const wantMoreFingerprint = "fe45d70fa21dacb90177e1b6e3ebcc7f84bb5860b8f2d44fcc877a77d30ba864"
+// 1e-7; wantFingerprint, with aci, did not change), and when dtaci came to
+// judge each expert at the miss rate it had at the forecast's issue
+// (conformal.Outcome.Lag; with every Lag set to 0 the previous value came
+// out again, so nothing else moved).
+const wantMoreFingerprint = "6d240655e70565c1ac11fff404a6d7b66693be002d38ac93fff07947bd8400ad"
 
 // TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
 // events, refusals, coverage statistics) over a fixed invented feed is the

@@ -5,7 +5,7 @@ package worker
 // each actor and replays the input stream from the snapshot's sequence,
 // and ends in the state a run without the restart would be in.
 //
-// # Layout, format version 3
+// # Layout, format version 5
 //
 // All integers are little-endian; a float is its IEEE 754 bits (NaN
 // payloads and signed zeros kept); a time is its Unix seconds (int64) and
@@ -14,7 +14,7 @@ package worker
 // bytes; a count is a uint32.
 //
 //	magic        "PLSN"
-//	version      uint16, 3
+//	version      uint16, 5
 //	site         the site's id, then its kind (strings)
 //	levels       count, then the quantile levels (floats)
 //	buckets      count, then the lead bucket edges (int64)
@@ -59,12 +59,16 @@ package worker
 //	crc          CRC-32 (IEEE) of every byte before it (uint32)
 //
 // The features of a pending forecast are its interval's start (time), lead
-// (int64), forecasts issued for the interval in the bucket (int32),
+// (int64), forecasts issued for the interval in the bucket (int32), the
+// bucket's settlements when it was issued (int32, -1 unknown),
 // availability, driver, weather run age and latest power (floats), night
 // flag (byte), and the weather row it was made from: 1 + the index of its
 // run in runs (uint32, 0 for none) and the row's index in the run (uint32).
 //
-// Version 3 is version 4 without the reference, z and cells of the queued
+// Version 4 is version 5 without the bucket's settlements at issue of each
+// pending forecast: they are read as unknown, and those forecasts' outcomes
+// judge dtaci's experts at their miss rates then, not at issue
+// (conformal.Outcome.Lag). Version 3 is version 4 without the reference, z and cells of the queued
 // events (read as zero) and without the cells' mean corrections (they start
 // at the calibrators' corrections). Its coverage monitors are of their own version 1,
 // with window-based alarms: those are replaced by new, cleared alarms
@@ -125,7 +129,7 @@ var (
 
 const (
 	snapshotMagic   = "PLSN"
-	snapshotVersion = 4
+	snapshotVersion = 5
 	// oldestSnapshotVersion is the oldest version this build reads (and
 	// migrates).
 	oldestSnapshotVersion = 1
@@ -384,6 +388,7 @@ func writePendingX(w *snapWriter, x *pendingX, index map[*model.WeatherRun]int) 
 	w.time(x.validStart)
 	w.i64(int64(x.lead))
 	w.u32(int(uint32(x.issued)))
+	w.u32(int(uint32(x.settledAt)))
 	w.f64(x.avail)
 	w.f64(x.driver)
 	w.f64(x.runAge)
@@ -731,12 +736,12 @@ func (a *Actor) readState(r *snapReader, fs model.Snapshotter, version uint16) e
 			rec := a.newRecord()
 			tg.rec[b] = rec
 			px, raw, pub := a.record(rec)
-			readPendingX(r, px, table)
+			readPendingX(r, px, table, int(version))
 			if version < 3 {
 				// The latest forecast's features, which the forecaster
 				// learned from before version 3: read and dropped.
 				var latest pendingX
-				readPendingX(r, &latest, table)
+				readPendingX(r, &latest, table, int(version))
 			}
 			for k := range raw {
 				// Written from float32 this is exact; written by a build
@@ -880,10 +885,14 @@ func readRun(r *snapReader) *model.WeatherRun {
 
 // readPendingX reads the features of a pending forecast; table is the
 // run table.
-func readPendingX(r *snapReader, x *pendingX, table []*model.WeatherRun) {
+func readPendingX(r *snapReader, x *pendingX, table []*model.WeatherRun, version int) {
 	x.validStart = r.time()
 	x.lead = r.int("lead", math.MinInt32, math.MaxInt32)
 	x.issued = int32(r.u32())
+	x.settledAt = -1 // unknown before version 5
+	if version >= 5 {
+		x.settledAt = int32(r.u32())
+	}
 	x.avail, x.driver, x.runAge, x.lastPower = r.f64(), r.f64(), r.f64(), r.f64()
 	x.night = r.bool()
 	ref, k := int(r.u32()), int(r.u32())

@@ -673,7 +673,7 @@ func TestSnapshotOldVersionsMigrate(t *testing.T) {
 		t.Fatalf("version 2 refused: %v (sequence %d)", err, seq)
 	}
 	v3 := snapshot(t, a, 77)
-	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 4 {
+	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 5 {
 		t.Fatalf("written back as version %d", v)
 	}
 	c, _, err := RestoreActor(site, cfg, v3)
@@ -724,5 +724,61 @@ func TestSnapshotOldVersionsMigrate(t *testing.T) {
 		if !bytes.Equal(got.Bytes(), want.Bytes()) {
 			t.Errorf("the %s restore's next bundle differs from the version 2 restore's", name)
 		}
+	}
+}
+
+// TestSnapshotVersion4Migrates restores a version 4 snapshot of a dtaci
+// site written before the pending forecasts kept their bucket's
+// settlements at issue (testdata/snapshot_v4_pv_dtaci.bin, three days of
+// the bench feed, written by commit efd4ff0): it restores, its pending
+// forecasts' lags are unknown (their outcomes judge dtaci's experts at
+// their miss rates now, as that build did), its calibrators restore from
+// their version 1 states, and it writes back as the current version,
+// which restores to itself. Forecasts issued after the restore know their
+// lag.
+func TestSnapshotVersion4Migrates(t *testing.T) {
+	site := testSites()[0]
+	cfg := snapConfig(t, "baseline", conformal.MethodDtACI)
+	v4, err := os.ReadFile("testdata/snapshot_v4_pv_dtaci.bin")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if v := binary.LittleEndian.Uint16(v4[4:]); v != 4 {
+		t.Fatalf("testdata snapshot of version %d, want 4", v)
+	}
+	a, seq, err := RestoreActor(site, cfg, v4)
+	if err != nil || seq != 91 {
+		t.Fatalf("version 4 refused: %v (sequence %d)", err, seq)
+	}
+	unknown := 0
+	for r := range a.nrec {
+		px, _, _ := a.record(r)
+		if px.settledAt == -1 {
+			unknown++
+		}
+	}
+	if unknown == 0 {
+		t.Fatal("no pending forecast restored with an unknown lag")
+	}
+	cur := snapshot(t, a, 91)
+	if v := binary.LittleEndian.Uint16(cur[4:]); v != snapshotVersion {
+		t.Fatalf("written back as version %d", v)
+	}
+	b, _, err := RestoreActor(site, cfg, cur)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if again := snapshot(t, b, 91); !bytes.Equal(again, cur) {
+		t.Error("the current snapshot of a migrated state does not restore to itself")
+	}
+	b.Refresh()
+	known := 0
+	for r := range b.nrec {
+		if px, _, _ := b.record(r); px.settledAt >= 0 {
+			known++
+		}
+	}
+	if known == 0 {
+		t.Error("no forecast issued after the restore knows its lag")
 	}
 }
