@@ -5,6 +5,7 @@ import (
 	"math/rand/v2"
 	"sort"
 	"testing"
+	"time"
 
 	"gonum.org/v1/gonum/stat"
 )
@@ -56,5 +57,41 @@ func TestBaselineQuantilesEdges(t *testing.T) {
 	// Without residuals: uniform over [0, capacity].
 	if dst[1] != 2 || dst[2] != 8 {
 		t.Fatalf("no data: %v, want 2 and 8 (uniform over 0..10)", dst[1:3])
+	}
+}
+
+// TestBaselineProfileFollowsSeason: where no weather run reaches, the
+// baseline forecasts from the site's mean output at the time of day, an
+// exponentially weighted mean with a half-life of ProfileHalfLife days
+// (14 by default). After 100 days at 0.2 of capacity at 08:00 and 14 at
+// 0.6 (a season's change, exaggerated), the estimate for 08:00 is
+// 0.2 + 0.4 (1 - (1 - ln2/14)^14) = 0.4035 (the rule's own sum, by hand);
+// with the curve's 200-day half-life it used before, the plain mean of the
+// 114 days, 0.249.
+func TestBaselineProfileFollowsSeason(t *testing.T) {
+	for _, c := range []struct {
+		halfLife, want float64
+	}{
+		{0, 0.2 + 0.4*(1-math.Pow(1-math.Ln2/14, 14))},
+		// 1/n outweighs ln2/200 for the first 288 days: the plain mean.
+		{200, (100*0.2 + 14*0.6) / 114},
+	} {
+		b := NewBaseline(KindPV, BaselineOptions{ProfileHalfLife: c.halfLife})
+		day0 := time.Date(2026, 1, 1, 8, 0, 0, 0, time.UTC)
+		x := Features{ValidMinutes: 60, LeadMinutes: 180, CapacityMW: 1, Availability: 1,
+			Driver: math.NaN(), LastPowerMW: math.NaN()}
+		for d := range 114 {
+			x.ValidStart = day0.AddDate(0, 0, d)
+			y := 0.2
+			if d >= 100 {
+				y = 0.6
+			}
+			b.Learn(y, []*Features{&x})
+		}
+		x.ValidStart = day0.AddDate(0, 0, 114)
+		if got := b.estimate(&x); math.Abs(got-c.want) > 1e-9 {
+			t.Errorf("half-life %v: estimate %.6f, want %.6f", c.halfLife, got, c.want)
+		}
+		t.Logf("half-life %v: estimate %.4f after 14 days at the new level", c.halfLife, c.want)
 	}
 }
