@@ -122,18 +122,7 @@ func (sc *scratch) meterRows(data []byte, maxRows int) ([]meterWire, bool) {
 
 // meterObject reads one meter row object into w, which must be zero.
 func (sc *scratch) meterObject(w *meterWire) bool {
-	if tok, err := sc.dec.ReadToken(); err != nil || tok.Kind() != '{' {
-		return false
-	}
-	for sc.dec.PeekKind() == '"' {
-		name, ok := sc.name()
-		if !ok {
-			return false
-		}
-		raw, ok := sc.value()
-		if !ok {
-			return false
-		}
+	return sc.object(func(name, raw []byte) bool {
 		switch string(name) {
 		case "site":
 			w.Site = rawString(sc, raw)
@@ -151,6 +140,26 @@ func (sc *scratch) meterObject(w *meterWire) bool {
 			if foldsToMeterField(name) {
 				return false // encoding/json would fill that field
 			}
+		}
+		return true
+	})
+}
+
+// object reads one object, handing each of its fields, name (without its
+// quotes) and raw value, to field; false when the input is not plain (see
+// above) or field says so.
+func (sc *scratch) object(field func(name, raw []byte) bool) bool {
+	if tok, err := sc.dec.ReadToken(); err != nil || tok.Kind() != '{' {
+		return false
+	}
+	for sc.dec.PeekKind() == '"' {
+		name, ok := sc.name()
+		if !ok {
+			return false
+		}
+		raw, ok := sc.value()
+		if !ok || !field(name, raw) {
+			return false
 		}
 	}
 	tok, err := sc.dec.ReadToken()
@@ -185,20 +194,9 @@ func (sc *scratch) weatherFields(data []byte, maxRows int) bool {
 
 // weatherObject reads one weather row object into f, which must be zero.
 func (sc *scratch) weatherObject(f *rowFields) bool {
-	if tok, err := sc.dec.ReadToken(); err != nil || tok.Kind() != '{' {
-		return false
-	}
 	from := len(sc.vars)
 	same := true // the variables so far are those of the last row, in order
-	for sc.dec.PeekKind() == '"' {
-		name, ok := sc.name()
-		if !ok {
-			return false
-		}
-		raw, ok := sc.value()
-		if !ok {
-			return false
-		}
+	ok := sc.object(func(name, raw []byte) bool {
 		switch string(name) {
 		case "site":
 			f.site = raw
@@ -219,8 +217,9 @@ func (sc *scratch) weatherObject(f *rowFields) bool {
 				sc.vars = append(sc.vars, rawVar{name: sc.intern(name), raw: raw})
 			}
 		}
-	}
-	if tok, err := sc.dec.ReadToken(); err != nil || tok.Kind() != '}' {
+		return true
+	})
+	if !ok {
 		return false
 	}
 	f.vars = sc.order.sort(sc.vars[from:], same)
