@@ -53,7 +53,8 @@ func offWindows(days []Day, k int, nominal float64, w int, tol float64) (float64
 // the level in every lead bucket, and a mean pinball loss no more than 2 %
 // above the uncalibrated model's. GEFCom2014 solar (three zones, scored
 // July 2013 to June 2014) and GEFCom2012 wind (four farms, three years)
-// meet both in every bucket but the last, open-ended one (36 h and more),
+// meet both in every bucket but the last, open-ended one (36 h and more;
+// serf-pv-15min meets both in every bucket, the last included),
 // which is logged, not held: its calibrators settle the fewest outcomes
 // and the level they need keeps moving, and ACI's lag leaves 1.2 (wind)
 // and 1.4 (solar) points here (not met yet; solar's was 1.8 before the
@@ -82,9 +83,17 @@ func TestCalibratedCoverageOpenData(t *testing.T) {
 	for _, c := range []struct {
 		data     string
 		from, to string
+		lastToo  bool // hold the open-ended last bucket too
+		alarms   bool // hold the alarms to six a year
 	}{
-		{"gefcom2014-solar", "2013-07-01", "2014-07-01"},
-		{"gefcom2012-wind", "", ""},
+		{"gefcom2014-solar", "2013-07-01", "2014-07-01", false, true},
+		{"gefcom2012-wind", "", "", false, true},
+		// serf-pv-15min (one site, 15-minute meter, two and a half months
+		// scored) meets both in every bucket, 36h+ included (measured:
+		// 0.0045-0.0097, pinball +1.3 %). Its alarms (2 and 1) are too few
+		// for a yearly rate: TestDriftScenarioAlarms holds them to one a
+		// month.
+		{"serf-pv-15min", "", "", true, false},
 	} {
 		t.Run(c.data, func(t *testing.T) {
 			t.Parallel()
@@ -104,14 +113,14 @@ func TestCalibratedCoverageOpenData(t *testing.T) {
 			ce, re := maxCoverageError(rep.Levels, cal.Intraday), maxCoverageError(rep.Levels, raw.Intraday)
 			for b := range ce {
 				t.Logf("bucket %s: largest |coverage - level| aci %.4f, none %.4f", rep.Buckets[b], ce[b], re[b])
-				if b < len(ce)-1 && ce[b] > 0.01 {
+				if (b < len(ce)-1 || c.lastToo) && ce[b] > 0.01 {
 					t.Errorf("bucket %s: aci coverage off by %.4f, more than 0.01", rep.Buckets[b], ce[b])
 				}
 			}
 			years := rep.To.Sub(rep.From).Hours() / (365.25 * 24)
 			for _, a := range cal.Alarms {
 				t.Logf("%s %s: %d raised in %.2f years", a.Site, a.Kind, a.Raised, years)
-				if float64(a.Raised) > 6*years {
+				if c.alarms && float64(a.Raised) > 6*years {
 					t.Errorf("%s: %d %s alarms raised in %.2f years of clean data, more than 6 a year", a.Site, a.Raised, a.Kind, years)
 				}
 			}
