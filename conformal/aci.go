@@ -100,8 +100,16 @@ func (a *ACI) Name() string { return MethodACI }
 func (a *ACI) Adjust() (level, offset float64) { return 1 - a.alphaT, 0 }
 
 // Update feeds one settled outcome: err = 1 when o.Y > o.Issued, and
-// alpha_{t+1} = alpha_t + gamma (alpha - err). An outcome whose Y or Issued is
-// NaN carries no hit or miss and is ignored.
+// alpha_{t+1} = alpha_t + gamma w (alpha - err), w = o.Weight (1 when
+// unset). Summed over T outcomes the steps telescope, as in Gibbs and
+// Candes's proof of the bound:
+//
+//	sum_t w_t (err_t - alpha) = (alpha_1 - alpha_{T+1}) / gamma,
+//
+// so the weighted miss rate obeys the bound of ACIBound with T the sum of
+// the weights, for weights at most 1 (our derivation; with larger ones the
+// gamma in the bound's numerator becomes gamma max(w)). An outcome whose Y
+// or Issued is NaN carries no hit or miss and is ignored.
 func (a *ACI) Update(o Outcome) {
 	if math.IsNaN(o.Y) || math.IsNaN(o.Issued) {
 		return
@@ -110,7 +118,7 @@ func (a *ACI) Update(o Outcome) {
 	if !o.Hit() {
 		err = 1
 	}
-	a.alphaT += a.gamma * ((1 - a.level) - err)
+	a.alphaT += a.gamma * o.weight() * ((1 - a.level) - err)
 }
 
 // Alpha returns alpha_t, the miss rate the next forecast will be issued at.

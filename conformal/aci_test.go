@@ -145,6 +145,57 @@ func TestACIBoundAdversarial(t *testing.T) {
 	}
 }
 
+// TestACIWeightedBound: with weighted steps (Outcome.Weight) the steps
+// telescope as in Gibbs and Candes's (2021) proof of the bound, so the
+// weighted miss rate sum w (err - alpha) / sum w stays within
+// (max(alpha_1, 1 - alpha_1) + gamma max(w)) / (gamma sum w) (our
+// derivation from theirs, see ACI.Update), and the identity
+// sum w (err - alpha) = (alpha_1 - alpha_{T+1}) / gamma holds to rounding.
+// The weights, in [1/2, 2] (wider than the worker's [2/3, 3/2]), are tied to the
+// outcome (2 where it lies high, 1/2 where low), so the unweighted miss
+// rate is pulled off alpha; a calibrator that ignored them would fail.
+func TestACIWeightedBound(t *testing.T) {
+	const steps = 20000
+	for _, gamma := range []float64{0.005, 0.05} {
+		for _, level := range []float64{0.1, 0.5, 0.9} {
+			t.Run(fmt.Sprintf("gamma=%v/level=%v", gamma, level), func(t *testing.T) {
+				rng := rand.New(rand.NewPCG(3, 5))
+				a := NewACI(level, ACIOptions{Gamma: gamma})
+				alpha, alpha1 := 1-level, a.Alpha()
+				var sw, swErr float64
+				misses := 0
+				for i := range steps {
+					y := 2 * rng.NormFloat64() // wider than the forecaster
+					w := 0.5
+					if y > 0 {
+						w = 2
+					}
+					l, off := a.Adjust()
+					o := Outcome{Y: y, Issued: normalQuantile(l) + off, PIT: math.NaN(), Weight: w}
+					err := 0.0
+					if !o.Hit() {
+						err = 1
+						misses++
+					}
+					a.Update(o)
+					sw += w
+					swErr += w * (err - alpha)
+					bound := (max(alpha1, 1-alpha1) + gamma*2) / (gamma * sw)
+					if dev := math.Abs(swErr / sw); dev > bound+1e-12 {
+						t.Fatalf("T = %d: weighted |miss rate - alpha| = %v exceeds %v", i+1, dev, bound)
+					}
+				}
+				if got, want := swErr, (alpha1-a.Alpha())/gamma; math.Abs(got-want) > 1e-6*math.Max(1, math.Abs(want)) {
+					t.Errorf("sum w (err - alpha) = %v, (alpha_1 - alpha_T+1) / gamma = %v", got, want)
+				}
+				if dev := math.Abs(float64(misses)/steps - alpha); dev < 0.01 {
+					t.Errorf("unweighted miss rate %v within %v of alpha: the weights test nothing", float64(misses)/steps, dev)
+				}
+			})
+		}
+	}
+}
+
 // TestACIAlphaLeavesUnitInterval shows alpha_t crossing 0 and 1 and the
 // level asked for following it: with alpha_t <= 0 the set is everything (a
 // hit), with alpha_t >= 1 it is empty (a miss), METHODS.md section 4.

@@ -9,6 +9,8 @@
 // that owns them serialises access.
 package conformal
 
+import "math"
+
 // Calibrator adjusts one level of a forecaster's raw quantiles so that the
 // share of outcomes at or below the issued quantile tracks the target level.
 //
@@ -52,6 +54,33 @@ type Outcome struct {
 	// expert need it (DtACI judges each expert at the miss rate it had at
 	// issue); the others ignore it.
 	Lag int
+	// Weight is how many issued forecasts this outcome stands for,
+	// relative to the calibrator's usual: the worker keeps one forecast
+	// per target interval and lead bucket, drawn from those it issued for
+	// it, so a target issued twice as often as usual counts twice (a
+	// Horvitz-Thompson weight; the worker truncates it to [2/3, 3/2]). The
+	// zero value counts as 1, as does any weight that is not positive and
+	// finite; one above MaxWeight counts as MaxWeight. ACI and the tracker scale their steps by it, so that their
+	// long-run guarantees hold for every forecast issued, not only for
+	// the ones kept; dtaci and split ignore it.
+	Weight float64
+}
+
+// MaxWeight is the largest weight an outcome counts with
+// (Outcome.Weight).
+const MaxWeight = 4
+
+// weight returns o.Weight, 1 where it is not positive and finite, at most
+// MaxWeight.
+func (o Outcome) weight() float64 { return outcomeWeight(o.Weight) }
+
+// outcomeWeight returns w, 1 where it is not positive and finite, at most
+// MaxWeight.
+func outcomeWeight(w float64) float64 {
+	if w > 0 && !math.IsInf(w, 0) {
+		return min(w, MaxWeight)
+	}
+	return 1
 }
 
 // Hit reports whether the outcome lies at or below the issued quantile.

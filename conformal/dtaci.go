@@ -273,7 +273,9 @@ func (d *DtACI) Name() string { return MethodDtACI }
 func (d *DtACI) Adjust() (level, offset float64) { return 1 - d.alphaT, 0 }
 
 // Update feeds one settled outcome as described on DtACI. An outcome whose Y
-// or Issued is NaN is ignored.
+// or Issued is NaN is ignored. Weight is not used: the experts' levels at
+// issue are rebuilt from one miss bit per update (see MaxLag), which
+// unequal steps would not allow.
 func (d *DtACI) Update(o Outcome) {
 	if math.IsNaN(o.Y) || math.IsNaN(o.Issued) {
 		return

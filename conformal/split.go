@@ -159,7 +159,8 @@ func (s *Split) Adjust() (level, offset float64) {
 }
 
 // Update feeds one settled outcome: the score Y - (Issued - offset) enters
-// the window, dropping the oldest when full. PIT is not used. An outcome
+// the window, dropping the oldest when full. PIT and Weight are not used
+// (the static reference weighs every kept outcome alike). An outcome
 // whose Y or Issued is NaN, or whose score is not finite, is ignored.
 func (s *Split) Update(o Outcome) {
 	if math.IsNaN(o.Y) || math.IsNaN(o.Issued) {

@@ -101,8 +101,8 @@ func (o TrackerOptions) resolve() (TrackerOptions, error) {
 // With err_t = 1{Y_t > Issued_t} and the target miss rate alpha = 1 - tau,
 // after each outcome
 //
-//	p_{t+1} = p_t + eta_t (err_t - alpha),   p_1 = 0      (P: quantile tracking)
-//	S_t     = sum over s <= t of (err_s - alpha)
+//	p_{t+1} = p_t + eta_t w_t (err_t - alpha),   p_1 = 0      (P: quantile tracking)
+//	S_t     = sum over s <= t of w_s (err_s - alpha)
 //	r_t     = KI B_t tanh(S_t log(t+1) / (Csat (t+1)))    (I: integrator)
 //	offset  = p_{t+1} + r_t
 //
@@ -139,6 +139,8 @@ func (o TrackerOptions) resolve() (TrackerOptions, error) {
 // back to the target after a transient such as a shift. With bounded scores
 // the P part alone keeps |mean(1{Y <= Issued}) - tau| <= (B + eta) / (eta T)
 // for a fixed step (METHODS.md section 4).
+//
+// w_t is the outcome's Outcome.Weight (1 when unset), as for ACI.
 //
 // Delayed feedback is otherwise handled as for ACI: one Tracker per (lead
 // bucket, level), updated as each of its outcomes settles.
@@ -199,10 +201,11 @@ func (t *Tracker) Update(o Outcome) {
 		eta = t.o.LR * t.scale
 	}
 	alpha := 1 - t.level
+	w := o.weight()
 	// Clamped to the finite doubles, p never becomes infinite, so the
 	// offset p + r never meets Inf - Inf, however wild the outcomes.
-	t.p = min(math.MaxFloat64, max(-math.MaxFloat64, t.p+eta*(err-alpha)))
-	t.sum += err - alpha
+	t.p = min(math.MaxFloat64, max(-math.MaxFloat64, t.p+eta*w*(err-alpha)))
+	t.sum += w * (err - alpha)
 	t.n++
 	t.settle()
 }
@@ -325,8 +328,8 @@ func (t *Tracker) UnmarshalBinary(data []byte) error {
 	if math.IsNaN(p) || math.IsInf(p, 0) {
 		return fmt.Errorf("%w: pid: p %v is not finite", ErrState, p)
 	}
-	// Each outcome moves S_t by err - alpha, in (-1, 1).
-	if !(math.Abs(sum) <= float64(n)) {
+	// Each outcome moves S_t by w (err - alpha), in (-MaxWeight, MaxWeight).
+	if !(math.Abs(sum) <= MaxWeight*float64(n)) {
 		return fmt.Errorf("%w: pid: accumulated error %v after %d outcomes", ErrState, sum, n)
 	}
 	errs := newSortedRing(ro.Window)

@@ -364,7 +364,7 @@ func TestTrackerStateRefusesBadData(t *testing.T) {
 		{"negative Eta", f(2, -1), "pid eta"},
 		{"negative KI", f(3, -1), "ki"},
 		{"NaN p", f(6, math.NaN()), "not finite"},
-		{"S beyond t", f(7, 1.5), "accumulated error 1.5 after 1 outcomes"},
+		{"S beyond MaxWeight t", f(7, 4.5), "accumulated error 4.5 after 1 outcomes"},
 		{"window 0", with(1+8*8+8, appendUint32(nil, 0)), "must not be zero"},
 		{"more errors than window", with(1+8*8+8+4, appendUint32(nil, 501)), "errors in a window"},
 		{"NaN error", with(len(good)-8, appendFloat(nil, math.NaN())), "error NaN"},
@@ -416,5 +416,44 @@ func BenchmarkTrackerUpdateAdjust(b *testing.B) {
 				i++
 			}
 		})
+	}
+}
+
+// TestTrackerWeight: the P step and the integrator's sum scale with the
+// outcome's weight (Outcome.Weight): from the same state, a miss of
+// weight 2 moves the offset twice as far as one of weight 1 when the
+// integrator is off, and with it on the integrator's sum S_t is the
+// weighted sum of err - alpha.
+func TestTrackerWeight(t *testing.T) {
+	rng := rand.New(rand.NewPCG(9, 1))
+	warm := make([]float64, 300)
+	for i := range warm {
+		warm[i] = rng.NormFloat64()
+	}
+	build := func(o TrackerOptions) *Tracker {
+		tr := NewTracker(0.8, o)
+		for _, y := range warm {
+			_, off := tr.Adjust()
+			tr.Update(Outcome{Y: y, Issued: normalQuantile(0.8) + off})
+		}
+		return tr
+	}
+	off := TrackerOptions{KI: -1}
+	a, b := build(off), build(off)
+	_, start := a.Adjust()
+	miss := Outcome{Y: 10, Issued: normalQuantile(0.8) + start}
+	a.Update(miss)
+	miss.Weight = 2
+	b.Update(miss)
+	_, oa := a.Adjust()
+	_, ob := b.Adjust()
+	if da, db := oa-start, ob-start; !(da > 0) || math.Abs(db-2*da) > 1e-12*math.Abs(da) {
+		t.Errorf("offset moved %v at weight 1, %v at weight 2", da, db)
+	}
+	c := build(TrackerOptions{})
+	sum := c.sum
+	c.Update(Outcome{Y: -10, Issued: 0, Weight: 0.5})
+	if want := sum + 0.5*(0-0.2); math.Abs(c.sum-want) > 1e-12 {
+		t.Errorf("S_t = %v after a hit of weight 1/2, want %v", c.sum, want)
 	}
 }

@@ -460,3 +460,45 @@ func TestRefreshIntoShared(t *testing.T) {
 		t.Fatalf("only %d bundles compared", steps)
 	}
 }
+
+// TestIssueWeight: a settled forecast's weight is the forecasts issued
+// for its interval over its bucket's mean of them, truncated to [2/3, 3/2];
+// the first settlement of a bucket (or the first after a restore of a
+// version 5 snapshot) starts the mean and weighs 1; the mean is a running
+// one over the first issuedWindow settlements.
+func TestIssueWeight(t *testing.T) {
+	a, err := NewActor(testSites()[1], snapConfig(t, "baseline", conformal.MethodACI))
+	if err != nil {
+		t.Fatal(err)
+	}
+	nl := len(a.cfg.Levels)
+	settle := func(b int, issued int32) float64 {
+		w := a.issueWeight(b, issued)
+		a.cells[b*nl].settled++
+		return w
+	}
+	for _, c := range []struct {
+		issued     int32
+		want, mean float64
+	}{
+		{12, 1, 12},               // first: starts the mean
+		{6, 2.0 / 3, 9},           // 6 / 12 = 1/2, truncated; then (12 + 6) / 2
+		{9, 1, 9},                 // 9 / 9
+		{27, 1.5, 13.5},           // 27 / 9 = 3, truncated; (12 + 6 + 9 + 27) / 4
+		{2, 2.0 / 3, 11.2},        // 2 / 13.5, truncated
+		{14, 14 / 11.2, 70.0 / 6}, // 1.25, within bounds
+	} {
+		if w := settle(3, c.issued); math.Abs(w-c.want) > 1e-12 || math.Abs(a.issuedMean[3]-c.mean) > 1e-12 {
+			t.Fatalf("issued %d: weight %v, mean %v; want %v, %v", c.issued, w, a.issuedMean[3], c.want, c.mean)
+		}
+	}
+	if a.issuedMean[2] != 0 {
+		t.Errorf("another bucket's mean moved: %v", a.issuedMean[2])
+	}
+	a.cells[3*nl].settled = 5 * issuedWindow
+	m := a.issuedMean[3]
+	settle(3, 1)
+	if want := m + (1-m)/issuedWindow; math.Abs(a.issuedMean[3]-want) > 1e-12 {
+		t.Errorf("past the window the mean moved to %v, want %v (exponential)", a.issuedMean[3], want)
+	}
+}

@@ -196,9 +196,12 @@ func playHash(t *testing.T, h hash.Hash, a *Actor, f feed) {
 // published once per site and kind (the events changed; the bundles,
 // refusals and statistics were checked unchanged by hashing them without
 // the events before and after), and when the baseline's residual windows
-// came to hold float32 (quantiles move by about 1e-7 of capacity).
+// came to hold float32 (quantiles move by about 1e-7 of capacity), and
+// when ACI, pid and the coverage monitors came to weigh each settled forecast by the forecasts
+// issued for its interval (Actor.issueWeight; with the weight held at 1
+// the previous values of all three fingerprints came out again).
 // Any other change of these bytes is a bug.
-const wantFingerprint = "2c84685e858e48b19dd343874bbb080fd341ba4fb065177633272756078e255b"
+const wantFingerprint = "0d2e29ed2c9c2cbf375a0e2ce14f21518c9efdb3b79bc84c4d34f119610aa617"
 
 // wantMoreFingerprint is the SHA-256 of everything moreFingerprintCases
 // give out (the calibrators pid, dtaci and split, and the reference
@@ -213,8 +216,9 @@ const wantFingerprint = "2c84685e858e48b19dd343874bbb080fd341ba4fb06517763327275
 // 1e-7; wantFingerprint, with aci, did not change), and when dtaci came to
 // judge each expert at the miss rate it had at the forecast's issue
 // (conformal.Outcome.Lag; with every Lag set to 0 the previous value came
-// out again, so nothing else moved).
-const wantMoreFingerprint = "6d240655e70565c1ac11fff404a6d7b66693be002d38ac93fff07947bd8400ad"
+// out again, so nothing else moved), and with the outcomes' weights (as
+// wantFingerprint).
+const wantMoreFingerprint = "0fdea12fb9781e67e03203516d3e04e9821a41dfe8b1bc58aed96f0f79ebdd7a"
 
 // TestFingerprintUnchanged: the actor's output (bundles byte for byte, alarm
 // events, refusals, coverage statistics) over a fixed invented feed is the
@@ -285,8 +289,9 @@ func demoFingerprint(t *testing.T) string {
 // by time of day came to follow the season (model.BaselineOptions
 // ProfileHalfLife 14 days instead of the curve's 200: the demo's sites
 // without weather past the runs' reach use it; wantFingerprint's feed is
-// too short for the two to differ).
-const wantDemoFingerprint = "f50c6258ce29e55c8f6d5aa8efe18da13dc50116948884ba84dacda55c4aaf5f"
+// too short for the two to differ), and with the outcomes' weights (as
+// wantFingerprint).
+const wantDemoFingerprint = "47b535b9144e95ef58acf575799a42a82839b77f9354fb9f1887ff8a6bf1a77b"
 
 // TestDemoFingerprintUnchanged: replaying the demo fleet gives the same
 // bundles and alarms, byte for byte, as before the performance work.

@@ -5,7 +5,7 @@ package worker
 // each actor and replays the input stream from the snapshot's sequence,
 // and ends in the state a run without the restart would be in.
 //
-// # Layout, format version 5
+// # Layout, format version 6
 //
 // All integers are little-endian; a float is its IEEE 754 bits (NaN
 // payloads and signed zeros kept); a time is its Unix seconds (int64) and
@@ -14,7 +14,7 @@ package worker
 // bytes; a count is a uint32.
 //
 //	magic        "PLSN"
-//	version      uint16, 5
+//	version      uint16, 6
 //	site         the site's id, then its kind (strings)
 //	levels       count, then the quantile levels (floats)
 //	buckets      count, then the lead bucket edges (int64)
@@ -46,6 +46,8 @@ package worker
 //	             coverage monitor's state (nested), the forecasts
 //	             settled, hits and raw hits (int64), and the mean
 //	             correction's level and offset (floats)
+//	issued       per lead bucket, the mean forecasts issued per settled
+//	             interval (float, 0 before the first settlement)
 //	events       count of queued alarm events; each: site, kind, state
 //	             (strings), level (float), lead bucket (string), target,
 //	             observed (floats), window (int64), p-value, reference,
@@ -65,6 +67,10 @@ package worker
 // flag (byte), and the weather row it was made from: 1 + the index of its
 // run in runs (uint32, 0 for none) and the row's index in the run (uint32).
 //
+// Version 5 is version 6 without the mean forecasts issued per lead
+// bucket: they are read as 0, and the first settlement of each bucket
+// after the restore starts the mean again (weighing its calibrators'
+// outcomes 1 until then; see issueWeight).
 // Version 4 is version 5 without the bucket's settlements at issue of each
 // pending forecast: they are read as unknown, and those forecasts' outcomes
 // judge dtaci's experts at their miss rates then, not at issue
@@ -129,7 +135,7 @@ var (
 
 const (
 	snapshotMagic   = "PLSN"
-	snapshotVersion = 5
+	snapshotVersion = 6
 	// oldestSnapshotVersion is the oldest version this build reads (and
 	// migrates).
 	oldestSnapshotVersion = 1
@@ -298,6 +304,9 @@ func (a *Actor) Snapshot(seq uint64) ([]byte, error) {
 		w.i64(int64(c.rawHits))
 		w.f64(c.corrLevel)
 		w.f64(c.corrOffset)
+	}
+	for _, m := range a.issuedMean {
+		w.f64(m)
 	}
 
 	w.u32(len(a.events))
@@ -791,6 +800,15 @@ func (a *Actor) readState(r *snapReader, fs model.Snapshotter, version uint16) e
 			// Written before the mean correction was kept: it starts at
 			// the correction now (no trend).
 			c.corrLevel, c.corrOffset = c.corr.Correction()
+		}
+	}
+	if version >= 6 {
+		for b := range a.issuedMean {
+			m := r.f64()
+			if r.err == nil && !(m == 0 || m >= 1 && !math.IsInf(m, 0)) {
+				r.fail("mean forecasts issued %v of bucket %d is neither 0 nor at least 1", m, b)
+			}
+			a.issuedMean[b] = m
 		}
 	}
 

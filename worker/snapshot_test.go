@@ -413,6 +413,20 @@ func TestSnapshotRefused(t *testing.T) {
 		{"empty", site, cfg, nil, ErrSnapshotCorrupt},
 		{"a flipped bit", site, cfg, func() []byte { b := slices.Clone(data); b[len(b)/2] ^= 8; return b }(), ErrSnapshotCorrupt},
 		{"padded", site, cfg, reseal(append(slices.Clone(data[:len(data)-4]), 0, 0, 0, 0, 0)), ErrSnapshotCorrupt},
+		{"a mean forecasts issued below 1", site, cfg, func() []byte {
+			// The lead buckets' means follow the cells, side by side.
+			var means []byte
+			for _, m := range a.issuedMean {
+				means = binary.LittleEndian.AppendUint64(means, math.Float64bits(m))
+			}
+			b := slices.Clone(data)
+			i := bytes.Index(b, means)
+			if a.issuedMean[0] < 1 || i < 0 || bytes.LastIndex(b, means) != i {
+				t.Fatalf("the means %v are not found once in the snapshot", a.issuedMean)
+			}
+			binary.LittleEndian.PutUint64(b[i:], math.Float64bits(0.5))
+			return reseal(b)
+		}(), ErrSnapshotCorrupt},
 		{"a huge count", site, cfg, func() []byte {
 			// The count of runs follows the header and the clock.
 			b := slices.Clone(data)
@@ -649,7 +663,7 @@ func TestSnapshotHasNoSideEffect(t *testing.T) {
 }
 
 // TestSnapshotOldVersionsMigrate: snapshots of format versions 2 and 1
-// restore, and are written back as the current version (4; its coverage
+// restore, and are written back as the current version (6; its coverage
 // monitors, of their version 1 in the old snapshot, get new alarms). testdata/snapshot_v2_pv.bin
 // was written by the code of commit 4fa8b0e (format version 2, which also
 // held the latest forecast's features of each pending forecast) for the
@@ -673,7 +687,7 @@ func TestSnapshotOldVersionsMigrate(t *testing.T) {
 		t.Fatalf("version 2 refused: %v (sequence %d)", err, seq)
 	}
 	v3 := snapshot(t, a, 77)
-	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 5 {
+	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 6 {
 		t.Fatalf("written back as version %d", v)
 	}
 	c, _, err := RestoreActor(site, cfg, v3)
@@ -780,5 +794,69 @@ func TestSnapshotVersion4Migrates(t *testing.T) {
 	}
 	if known == 0 {
 		t.Error("no forecast issued after the restore knows its lag")
+	}
+}
+
+// TestSnapshotVersion5Migrates restores a version 5 snapshot, written
+// before the lead buckets kept the mean forecasts issued per settled
+// interval (testdata/snapshot_v5_pv_aci.bin: the pv-test site fed
+// variedFeed(pv-test, 3, 11), baseline forecaster, aci, sequence 298,
+// written by the code of commit 4393ca8): it restores with every mean
+// unknown (0), writes back as the current version, which restores to
+// itself, and the settlements after it start the means again.
+func TestSnapshotVersion5Migrates(t *testing.T) {
+	site := testSites()[0]
+	cfg := snapConfig(t, "baseline", conformal.MethodACI)
+	v5, err := os.ReadFile("testdata/snapshot_v5_pv_aci.bin")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if v := binary.LittleEndian.Uint16(v5[4:]); v != 5 {
+		t.Fatalf("testdata snapshot of version %d, want 5", v)
+	}
+	a, seq, err := RestoreActor(site, cfg, v5)
+	if err != nil || seq != 298 {
+		t.Fatalf("version 5 refused: %v (sequence %d)", err, seq)
+	}
+	for b, m := range a.issuedMean {
+		if m != 0 {
+			t.Fatalf("bucket %d restored with mean forecasts issued %v, want 0 (unknown)", b, m)
+		}
+	}
+	cur := snapshot(t, a, seq)
+	if v := binary.LittleEndian.Uint16(cur[4:]); v != snapshotVersion {
+		t.Fatalf("written back as version %d", v)
+	}
+	b, _, err := RestoreActor(site, cfg, cur)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if again := snapshot(t, b, seq); !bytes.Equal(again, cur) {
+		t.Error("the current snapshot of a migrated state does not restore to itself")
+	}
+	fed := 0
+	for _, in := range inputs(variedFeed(site, 5, 11)) {
+		if in.reading == nil || !in.reading.IntervalStart.After(b.now) {
+			continue
+		}
+		apply(t, b, in)
+		fed++
+	}
+	known := 0
+	for _, m := range b.issuedMean {
+		if m >= 1 {
+			known++
+		}
+	}
+	if fed == 0 || known == 0 {
+		t.Errorf("%d readings after the restore; %d lead buckets know their mean forecasts issued", fed, known)
+	}
+	again := snapshot(t, b, seq+uint64(fed))
+	c, _, err := RestoreActor(site, cfg, again)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !slices.Equal(c.issuedMean, b.issuedMean) {
+		t.Errorf("means %v restored as %v", b.issuedMean, c.issuedMean)
 	}
 }

@@ -110,6 +110,35 @@ var checks = []check{
 	{"CoverageMisspecified", checkCoverageShifted},
 	{"StateRoundTrip", checkRoundTrip},
 	{"CorrectionIsAdjust", checkCorrection},
+	{"UnitWeightIsUnweighted", checkUnitWeight},
+}
+
+// checkUnitWeight: an outcome of Weight 1, or of a weight that is not
+// positive and finite, updates a calibrator exactly as one with no weight
+// (the zero value), so a caller that never weighs changes nothing.
+func checkUnitWeight(newCal func(float64) conformal.Calibrator, _ Options) error {
+	for _, level := range levels {
+		for _, w := range []float64{1, math.NaN(), -1, math.Inf(1)} {
+			a, b := newCal(level), newCal(level)
+			rng := source(5, level)
+			for i := range 2000 {
+				y := 0.5 + rng.NormFloat64()
+				for k, c := range []conformal.Calibrator{a, b} {
+					l, off := c.Adjust()
+					o := conformal.Outcome{Y: y, Issued: quantile(l) + off, PIT: math.NaN()}
+					if k == 1 {
+						o.Weight = w
+					}
+					c.Update(o)
+				}
+				la, oa := a.Adjust()
+				if lb, ob := b.Adjust(); !same(la, oa, lb, ob) {
+					return fmt.Errorf("level %v: after %d outcomes, unweighted Adjust gave (%v, %v), weight %v (%v, %v)", level, i+1, la, oa, w, lb, ob)
+				}
+			}
+		}
+	}
+	return nil
 }
 
 // checkCorrection: a calibrator that implements conformal.Corrector tells

@@ -78,6 +78,23 @@ func (c *nudging) Update(o conformal.Outcome) {
 	c.asked = false
 }
 
+// rawWeight is an ACI that takes every weight as given, an unusable one
+// (NaN, negative, infinite) included.
+type rawWeight struct{ *conformal.ACI }
+
+func (c rawWeight) Update(o conformal.Outcome) {
+	if o.Weight == 0 {
+		c.ACI.Update(o)
+		return
+	}
+	// Weight w as w updates of weight 1 would be; NaN or negative: none.
+	for k := 0.0; k < o.Weight && k < 3; k++ {
+		o2 := o
+		o2.Weight = 0
+		c.ACI.Update(o2)
+	}
+}
+
 // forgetful is an ACI whose state drops alpha_t (restores the initial one).
 type forgetful struct{ *conformal.ACI }
 
@@ -119,6 +136,7 @@ func TestSuiteCatchesDefects(t *testing.T) {
 		{"state loses alpha_t", func(l float64) conformal.Calibrator { return forgetful{aci(l).(*conformal.ACI)} }, Options{}, checkRoundTrip, "after the restore"},
 		{"no unmarshaler", func(l float64) conformal.Calibrator { return marshalOnly{conformal.NewNone(l)} }, Options{}, checkRoundTrip, "not encoding.BinaryUnmarshaler"},
 		{"correction off by a hair", func(l float64) conformal.Calibrator { return offCorrector{aci(l).(*conformal.ACI)} }, Options{}, checkCorrection, "Correction ("},
+		{"weight taken as given", func(l float64) conformal.Calibrator { return rawWeight{aci(l).(*conformal.ACI)} }, Options{}, checkUnitWeight, "weight NaN"},
 		{"correction with a side effect", func(l float64) conformal.Calibrator { return &nudging{aci(l).(*conformal.ACI), false} }, Options{}, checkCorrection, "changed Adjust"},
 	}
 	for _, c := range cases {
