@@ -241,31 +241,6 @@ func (a *Alarm) Add(hit bool) {
 	a.vw = a.af*a.vw + 1
 }
 
-// AddWeighted records one outcome of weight w (as Outcome.Weight: 1
-// where it is not positive and finite, at most MaxWeight): the past keeps
-// 2^(-w/half-life) of its weight and the outcome counts w, in the recent
-// and longer-run coverage and in the spread alike. Weight 1 is Add.
-func (a *Alarm) AddWeighted(hit bool, w float64) {
-	w = outcomeWeight(w)
-	if w == 1 {
-		a.Add(hit)
-		return
-	}
-	x := 0.0
-	if hit {
-		x = w
-	}
-	dr, df := math.Exp2(-w/a.opt.Recent), math.Exp2(-w/a.opt.Reference)
-	a.n++
-	a.rs = dr*a.rs + x
-	a.rw = dr*a.rw + w
-	a.fs = df*a.fs + x
-	a.fw = df*a.fw + w
-	g := a.rs/a.rw - a.fs/a.fw
-	a.vs = df*a.vs + w*g*g
-	a.vw = df*a.vw + w
-}
-
 // Z returns the last check's gap in units of the usual spread (0 before
 // the first check).
 func (a *Alarm) Z() float64 { return a.z }

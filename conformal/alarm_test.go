@@ -416,32 +416,3 @@ func TestEventBeforeAnyCheck(t *testing.T) {
 		t.Errorf("json.Marshal: %v", err)
 	}
 }
-
-// TestAlarmWeighted: an outcome of weight 1 is Add, bit for bit; one of
-// weight w leaves the past 2^(-w/half-life) and counts w in the recent
-// and longer-run coverages, summed here by hand.
-func TestAlarmWeighted(t *testing.T) {
-	o := AlarmOptions{Recent: 4, Reference: 16}
-	a, _ := NewAlarm(o)
-	b, _ := NewAlarm(o)
-	for i := range 50 {
-		a.Add(i%3 == 0)
-		b.AddWeighted(i%3 == 0, 1)
-	}
-	if a.Recent() != b.Recent() || a.LongRun() != b.LongRun() || a.Spread() != b.Spread() {
-		t.Fatalf("weight 1: %v %v %v, Add: %v %v %v", b.Recent(), b.LongRun(), b.Spread(), a.Recent(), a.LongRun(), a.Spread())
-	}
-	c, _ := NewAlarm(o)
-	c.AddWeighted(true, 1.5)
-	c.AddWeighted(false, 0.5)
-	dr, df := math.Exp2(-0.5/4), math.Exp2(-0.5/16)
-	if want := 1.5 * dr / (1.5*dr + 0.5); math.Abs(c.Recent()-want) > 1e-12 {
-		t.Errorf("recent %v, by hand %v", c.Recent(), want)
-	}
-	if want := 1.5 * df / (1.5*df + 0.5); math.Abs(c.LongRun()-want) > 1e-12 {
-		t.Errorf("longer-run %v, by hand %v", c.LongRun(), want)
-	}
-	if c.Count() != 2 {
-		t.Errorf("count %d", c.Count())
-	}
-}

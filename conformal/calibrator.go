@@ -72,13 +72,9 @@ const MaxWeight = 4
 
 // weight returns o.Weight, 1 where it is not positive and finite, at most
 // MaxWeight.
-func (o Outcome) weight() float64 { return outcomeWeight(o.Weight) }
-
-// outcomeWeight returns w, 1 where it is not positive and finite, at most
-// MaxWeight.
-func outcomeWeight(w float64) float64 {
-	if w > 0 && !math.IsInf(w, 0) {
-		return min(w, MaxWeight)
+func (o Outcome) weight() float64 {
+	if o.Weight > 0 && !math.IsInf(o.Weight, 0) {
+		return min(o.Weight, MaxWeight)
 	}
 	return 1
 }

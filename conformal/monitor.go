@@ -112,22 +112,13 @@ func (m *Monitor) Observe(o Outcome) {
 // ties at a point mass (an outcome equal to a clipped quantile) decide the
 // hits themselves and use Record.
 func (m *Monitor) Record(hit, rawKnown, rawHit bool) {
-	m.RecordWeighted(hit, rawKnown, rawHit, 1)
-}
-
-// RecordWeighted is Record for an outcome of weight w (Outcome.Weight):
-// the exponentially weighted coverages and the alarms count it w times
-// as much as an outcome of weight 1, so that they watch the coverage the
-// weighted calibrators hold; the windows, whose counts the Kupiec and
-// Christoffersen tests read, count it once.
-func (m *Monitor) RecordWeighted(hit, rawKnown, rawHit bool, w float64) {
 	m.Calibrated.Add(hit)
-	m.CalibratedEW.AddWeighted(hit, w)
-	m.Alarm.AddWeighted(hit, w)
+	m.CalibratedEW.Add(hit)
+	m.Alarm.Add(hit)
 	if rawKnown {
 		m.Raw.Add(rawHit)
-		m.RawEW.AddWeighted(rawHit, w)
-		m.RawAlarm.AddWeighted(rawHit, w)
+		m.RawEW.Add(rawHit)
+		m.RawAlarm.Add(rawHit)
 	}
 }
 

@@ -196,23 +196,6 @@ func (e *EWCoverage) Add(hit bool) {
 	}
 }
 
-// AddWeighted records one sample of weight w (as Outcome.Weight: 1 where
-// it is not positive and finite, at most MaxWeight): the past keeps
-// decay^w of its weight, and the sample counts w. Weight 1 is Add.
-func (e *EWCoverage) AddWeighted(hit bool, w float64) {
-	w = outcomeWeight(w)
-	if w == 1 {
-		e.Add(hit)
-		return
-	}
-	d := math.Pow(e.decay, w)
-	e.sum *= d
-	e.weight = e.weight*d + w
-	if hit {
-		e.sum += w
-	}
-}
-
 // Coverage returns the weighted share of hits, or NaN before any sample.
 func (e *EWCoverage) Coverage() float64 {
 	if e.weight == 0 {

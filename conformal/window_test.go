@@ -211,27 +211,3 @@ func TestNewEWCoveragePanics(t *testing.T) {
 		})
 	}
 }
-
-// TestEWCoverageWeighted: a sample of weight 1 (or of an unusable weight)
-// is Add, bit for bit; one of weight w leaves the past decay^w of its
-// weight and counts w, summed here by hand.
-func TestEWCoverageWeighted(t *testing.T) {
-	a, b := NewEWCoverage(10), NewEWCoverage(10)
-	for i, w := range []float64{1, math.NaN(), -2, math.Inf(1), 0} {
-		a.Add(i%2 == 0)
-		b.AddWeighted(i%2 == 0, w)
-		if a.Coverage() != b.Coverage() || a.Weight() != b.Weight() {
-			t.Fatalf("weight %v: coverage %v / weight %v, Add gave %v / %v", w, b.Coverage(), b.Weight(), a.Coverage(), a.Weight())
-		}
-	}
-	e := NewEWCoverage(10)
-	d := math.Exp2(-1.0 / 10)
-	e.AddWeighted(true, 1.5)
-	e.AddWeighted(false, 0.5)
-	e.AddWeighted(true, 9) // counts as MaxWeight
-	sum := (1.5*math.Pow(d, 0.5))*math.Pow(d, MaxWeight) + MaxWeight
-	weight := (1.5*math.Pow(d, 0.5)+0.5)*math.Pow(d, MaxWeight) + MaxWeight
-	if math.Abs(e.Coverage()-sum/weight) > 1e-12 || math.Abs(e.Weight()-weight) > 1e-12 {
-		t.Errorf("coverage %v, weight %v; by hand %v, %v", e.Coverage(), e.Weight(), sum/weight, weight)
-	}
-}

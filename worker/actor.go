@@ -642,7 +642,7 @@ func (a *Actor) settle(tg *target, r *model.Reading, at time.Time) {
 				}
 			}
 			rawHit := pit <= a.cfg.Levels[j]
-			c.mon.RecordWeighted(hit, true, rawHit, w)
+			c.mon.Record(hit, true, rawHit)
 			c.settled++
 			if hit {
 				c.hits++
