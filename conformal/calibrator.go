@@ -60,9 +60,10 @@ type Outcome struct {
 	// it, so a target issued twice as often as usual counts twice (a
 	// Horvitz-Thompson weight; the worker truncates it to [2/3, 3/2]). The
 	// zero value counts as 1, as does any weight that is not positive and
-	// finite; one above MaxWeight counts as MaxWeight. ACI and the tracker scale their steps by it, so that their
-	// long-run guarantees hold for every forecast issued, not only for
-	// the ones kept; dtaci and split ignore it.
+	// finite; one above MaxWeight counts as MaxWeight. ACI and the
+	// tracker scale their steps by it, so that their long-run guarantees
+	// hold for every forecast issued, not only for the ones kept; dtaci
+	// and split ignore it.
 	Weight float64
 }
 
