@@ -78,6 +78,11 @@ type Config struct {
 	// RawAlarm the raw_drift one. The zero values are the defaults of
 	// conformal.AlarmOptions.
 	Alarm, RawAlarm conformal.AlarmOptions
+	// MeterFlat raises meter_flat when a site's meter has read one value
+	// between 1 % and 95 % of capacity for this long of event time (a stuck
+	// meter or a frozen feed; see KindMeterFlat); 0 means
+	// DefaultMeterFlat, negative turns the check off.
+	MeterFlat time.Duration
 	// NewForecaster makes a site's forecaster; nil means model.NewBaseline.
 	NewForecaster func(model.Site) model.Forecaster
 }
@@ -101,6 +106,9 @@ func (c Config) WithDefaults() Config {
 	}
 	if c.CoverageWindow <= 0 {
 		c.CoverageWindow = 672
+	}
+	if c.MeterFlat == 0 {
+		c.MeterFlat = DefaultMeterFlat
 	}
 	if c.NewForecaster == nil {
 		b := c.Buckets
@@ -234,6 +242,8 @@ type Actor struct {
 	// before the first (or after a restore of a snapshot older than
 	// version 6). See issueWeight.
 	issuedMean []float64
+	// flat follows the run of equal meter readings (meter_flat).
+	flat flatMeter
 
 	// The reorder window (Config.Reorder): inputs held, in order, and the
 	// latest event time held or seen.
@@ -279,6 +289,9 @@ func NewActor(site model.Site, cfg Config) (*Actor, error) {
 		fc:           cfg.NewForecaster(site),
 		lastPower:    math.NaN(),
 		availability: 1,
+	}
+	if a.cfg.MeterFlat == 0 {
+		a.cfg.MeterFlat = DefaultMeterFlat
 	}
 	nl := len(cfg.Levels)
 	a.cells = make([]cell, cfg.Buckets.Len()*nl)
@@ -405,6 +418,11 @@ func (a *Actor) Meter(r *model.Reading) error {
 		return fmt.Errorf("%w: interval %s already applied", ErrDuplicate, r.IntervalStart.Format(time.RFC3339))
 	}
 	a.seen.insert(si, key, struct{}{})
+	if a.cfg.MeterFlat > 0 {
+		if e, ok := a.flat.observe(a.site.ID, r, a.site.CapacityMW, a.cfg.MeterFlat); ok {
+			a.events = append(a.events, e)
+		}
+	}
 	if a.site.Kind == model.KindPV && !math.IsNaN(r.PowerMW) {
 		if a.firstMeter.IsZero() {
 			a.firstMeter = r.IntervalStart

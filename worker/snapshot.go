@@ -5,7 +5,7 @@ package worker
 // each actor and replays the input stream from the snapshot's sequence,
 // and ends in the state a run without the restart would be in.
 //
-// # Layout, format version 6
+// # Layout, format version 7
 //
 // All integers are little-endian; a float is its IEEE 754 bits (NaN
 // payloads and signed zeros kept); a time is its Unix seconds (int64) and
@@ -14,7 +14,7 @@ package worker
 // bytes; a count is a uint32.
 //
 //	magic        "PLSN"
-//	version      uint16, 6
+//	version      uint16, 7
 //	site         the site's id, then its kind (strings)
 //	levels       count, then the quantile levels (floats)
 //	buckets      count, then the lead bucket edges (int64)
@@ -48,6 +48,10 @@ package worker
 //	             correction's level and offset (floats)
 //	issued       per lead bucket, the mean forecasts issued per settled
 //	             interval (float, 0 before the first settlement)
+//	flat         the run of equal meter readings (meter_flat): its value
+//	             (float), first interval start and last interval end
+//	             (times), the time its readings cover (int64, ns), readings
+//	             (int64) and whether its alarm is raised (byte)
 //	events       count of queued alarm events; each: site, kind, state
 //	             (strings), level (float), lead bucket (string), target,
 //	             observed (floats), window (int64), p-value, reference,
@@ -67,6 +71,9 @@ package worker
 // flag (byte), and the weather row it was made from: 1 + the index of its
 // run in runs (uint32, 0 for none) and the row's index in the run (uint32).
 //
+// Version 6 is version 7 without the run of equal meter readings: it is
+// read as no run, and the meter_flat check starts again at the next
+// reading.
 // Version 5 is version 6 without the mean forecasts issued per lead
 // bucket: they are read as 0, and the first settlement of each bucket
 // after the restore starts the mean again (weighing its calibrators'
@@ -135,7 +142,7 @@ var (
 
 const (
 	snapshotMagic   = "PLSN"
-	snapshotVersion = 6
+	snapshotVersion = 7
 	// oldestSnapshotVersion is the oldest version this build reads (and
 	// migrates).
 	oldestSnapshotVersion = 1
@@ -308,6 +315,12 @@ func (a *Actor) Snapshot(seq uint64) ([]byte, error) {
 	for _, m := range a.issuedMean {
 		w.f64(m)
 	}
+	w.f64(a.flat.value)
+	w.time(a.flat.start)
+	w.time(a.flat.end)
+	w.i64(int64(a.flat.covered))
+	w.i64(int64(a.flat.n))
+	w.bool(a.flat.raised)
 
 	w.u32(len(a.events))
 	for _, e := range a.events {
@@ -809,6 +822,25 @@ func (a *Actor) readState(r *snapReader, fs model.Snapshotter, version uint16) e
 				r.fail("mean forecasts issued %v of bucket %d is neither 0 nor at least 1", m, b)
 			}
 			a.issuedMean[b] = m
+		}
+	}
+	if version >= 7 {
+		f := &a.flat
+		f.value = r.f64()
+		f.start, f.end = r.time(), r.time()
+		f.covered = time.Duration(r.i64())
+		f.n = r.int("flat readings", 0, math.MaxInt32)
+		f.raised = r.bool()
+		switch {
+		case r.err != nil:
+		case math.IsNaN(f.value) || math.IsInf(f.value, 0):
+			r.fail("flat run value %v is not finite", f.value)
+		case f.end.Before(f.start):
+			r.fail("flat run ends %s before it starts %s", f.end, f.start)
+		case f.covered < 0 || f.covered > f.end.Sub(f.start):
+			r.fail("flat run covers %s, outside its span %s", f.covered, f.end.Sub(f.start))
+		case f.raised && f.n == 0:
+			r.fail("flat alarm raised without a run")
 		}
 	}
 

@@ -13,6 +13,7 @@ import (
 	"slices"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/plumb-forecast/plumb/conformal"
 	"github.com/plumb-forecast/plumb/model"
@@ -427,6 +428,20 @@ func TestSnapshotRefused(t *testing.T) {
 			binary.LittleEndian.PutUint64(b[i:], math.Float64bits(0.5))
 			return reseal(b)
 		}(), ErrSnapshotCorrupt},
+		{"a meter_flat alarm raised without a run", site, cfg, func() []byte {
+			// The run of equal readings follows the means: value (8
+			// bytes), start and end (12 each), covered (8), readings (8),
+			// raised (1).
+			var means []byte
+			for _, m := range a.issuedMean {
+				means = binary.LittleEndian.AppendUint64(means, math.Float64bits(m))
+			}
+			b := slices.Clone(data)
+			i := bytes.Index(b, means) + len(means)
+			binary.LittleEndian.PutUint64(b[i+40:], 0)
+			b[i+48] = 1
+			return reseal(b)
+		}(), ErrSnapshotCorrupt},
 		{"a huge count", site, cfg, func() []byte {
 			// The count of runs follows the header and the clock.
 			b := slices.Clone(data)
@@ -663,7 +678,7 @@ func TestSnapshotHasNoSideEffect(t *testing.T) {
 }
 
 // TestSnapshotOldVersionsMigrate: snapshots of format versions 2 and 1
-// restore, and are written back as the current version (6; its coverage
+// restore, and are written back as the current version (7; its coverage
 // monitors, of their version 1 in the old snapshot, get new alarms). testdata/snapshot_v2_pv.bin
 // was written by the code of commit 4fa8b0e (format version 2, which also
 // held the latest forecast's features of each pending forecast) for the
@@ -687,7 +702,7 @@ func TestSnapshotOldVersionsMigrate(t *testing.T) {
 		t.Fatalf("version 2 refused: %v (sequence %d)", err, seq)
 	}
 	v3 := snapshot(t, a, 77)
-	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 6 {
+	if v := binary.LittleEndian.Uint16(v3[4:]); v != snapshotVersion || snapshotVersion != 7 {
 		t.Fatalf("written back as version %d", v)
 	}
 	c, _, err := RestoreActor(site, cfg, v3)
@@ -794,6 +809,61 @@ func TestSnapshotVersion4Migrates(t *testing.T) {
 	}
 	if known == 0 {
 		t.Error("no forecast issued after the restore knows its lag")
+	}
+}
+
+// TestSnapshotVersion6Migrates restores a version 6 snapshot, written
+// before the actor followed the run of equal meter readings
+// (testdata/snapshot_v6_pv_aci.bin: the pv-test site fed
+// variedFeed(pv-test, 3, 11), baseline forecaster, aci, sequence 298,
+// written by the code of commit 7652e3d): it restores with no run, writes
+// back as the current version, which restores to itself, and a meter
+// stuck after it raises meter_flat once the limit has passed.
+func TestSnapshotVersion6Migrates(t *testing.T) {
+	site := testSites()[0]
+	cfg := snapConfig(t, "baseline", conformal.MethodACI)
+	v6, err := os.ReadFile("testdata/snapshot_v6_pv_aci.bin")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if v := binary.LittleEndian.Uint16(v6[4:]); v != 6 {
+		t.Fatalf("testdata snapshot of version %d, want 6", v)
+	}
+	a, seq, err := RestoreActor(site, cfg, v6)
+	if err != nil || seq != 298 {
+		t.Fatalf("version 6 refused: %v (sequence %d)", err, seq)
+	}
+	if a.flat != (flatMeter{}) {
+		t.Fatalf("restored with a run of equal readings %+v, want none", a.flat)
+	}
+	cur := snapshot(t, a, seq)
+	if v := binary.LittleEndian.Uint16(cur[4:]); v != snapshotVersion || snapshotVersion != 7 {
+		t.Fatalf("written back as version %d", v)
+	}
+	b, _, err := RestoreActor(site, cfg, cur)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if again := snapshot(t, b, seq); !bytes.Equal(again, cur) {
+		t.Error("the current snapshot of a migrated state does not restore to itself")
+	}
+	b.Events()
+	stuck := 0.4 * site.CapacityMW
+	start := b.Now()
+	var raised []conformal.Event
+	for k := 0; k < 4*15; k++ { // 15 hours of 15-minute readings
+		r := &model.Reading{Site: site.ID, IntervalStart: start.Add(time.Duration(k) * 15 * time.Minute), IntervalMinutes: 15, PowerMW: stuck, Availability: 1}
+		if err := b.Meter(r); err != nil {
+			t.Fatal(err)
+		}
+		for _, e := range b.Events() {
+			if e.Kind == KindMeterFlat {
+				raised = append(raised, e)
+			}
+		}
+	}
+	if len(raised) != 1 || raised[0].State != conformal.StateRaised || !raised[0].EventTime.Equal(start.Add(DefaultMeterFlat)) {
+		t.Errorf("a meter stuck for 15 h after the restore raised %+v, want one raise at %s", raised, start.Add(DefaultMeterFlat))
 	}
 }
 

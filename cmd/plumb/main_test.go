@@ -62,6 +62,9 @@ func TestHelp(t *testing.T) {
 	if code, _, errOut := run(t, "run"); code != 2 || !strings.Contains(errOut, "--sites is required") {
 		t.Errorf("run without --sites: code %d, %q", code, errOut)
 	}
+	if code, _, errOut := run(t, "demo", "--duration", "0", "--meter-flat", "0"); code == 0 || !strings.Contains(errOut, "--meter-flat 0") {
+		t.Errorf("demo --meter-flat 0: code %d, %q; want a refusal naming the flag", code, errOut)
+	}
 	if code, _, errOut := run(t, "replay", "--data", t.TempDir()); code != 1 || !strings.Contains(errOut, "sites.json") {
 		t.Errorf("replay of an empty folder: code %d, %q", code, errOut)
 	}

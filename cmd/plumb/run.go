@@ -70,6 +70,7 @@ type workerFlags struct {
 	alarmZ     float64
 	alarmRec   float64
 	alarmHist  float64
+	meterFlat  time.Duration
 	shards     int
 	reorder    time.Duration
 }
@@ -86,6 +87,7 @@ func (w *workerFlags) register(fs *flag.FlagSet) {
 	fs.Float64Var(&w.alarmZ, "alarm-z", conformal.DefaultAlarmZ, "and only when that gap is at least this many times its usual spread at the site, lead bucket and level (larger: fewer alarms, later)")
 	fs.Float64Var(&w.alarmRec, "alarm-recent", conformal.DefaultAlarmRecent, "half-life, in settled forecasts of a lead bucket and level, of the recent coverage the alarms judge (96: a day of 15-minute meters; an hourly meter's day is 24)")
 	fs.Float64Var(&w.alarmHist, "alarm-history", conformal.DefaultAlarmReference, "half-life, in settled forecasts, of the longer-run coverage and of the usual spread the alarms compare with; no alarm changes state before a quarter of it has settled (2688: four weeks of 15-minute meters)")
+	fs.DurationVar(&w.meterFlat, "meter-flat", worker.DefaultMeterFlat, "raise meter_flat when a site's meter has read one value between 1 % and 95 % of capacity for this long of event time (a stuck meter or a frozen feed; the open data's longest such run is 10h; negative: off)")
 	fs.IntVar(&w.shards, "shards", 2, "goroutines the site actors are spread over")
 	fs.DurationVar(&w.reorder, "reorder-window", 0, "hold each input until one this much later in event time has come, and apply them in event-time order: inputs shuffled within the window (several meter gateways, retries) then give exactly the state inputs in order give, and bundles lag by the window (0: apply on arrival; at most 6h, the lateness)")
 }
@@ -101,6 +103,9 @@ func (w *workerFlags) config() (worker.Config, error) {
 	if w.reorder < 0 || w.reorder > 6*time.Hour {
 		return worker.Config{}, fmt.Errorf("--reorder-window %s must lie between 0 and 6h (the lateness)", w.reorder)
 	}
+	if w.meterFlat == 0 {
+		return worker.Config{}, fmt.Errorf("--meter-flat 0: give how long a meter may read one value, or a negative duration to turn the check off")
+	}
 	if w.gamma <= 0 || w.gamma >= 1 {
 		return worker.Config{}, fmt.Errorf("--gamma %v must lie in (0, 1)", w.gamma)
 	}
@@ -112,6 +117,7 @@ func (w *workerFlags) config() (worker.Config, error) {
 		Alarm:          conformal.AlarmOptions{Tolerance: w.tolerance, Z: w.alarmZ, Recent: w.alarmRec, Reference: w.alarmHist},
 		RawAlarm:       conformal.AlarmOptions{Tolerance: w.tolerance, Z: w.alarmZ, Recent: w.alarmRec, Reference: w.alarmHist, Kind: conformal.KindRawDrift},
 		Reorder:        w.reorder,
+		MeterFlat:      w.meterFlat,
 	}
 	if _, err := conformal.New(0.5, cfg.Calibrator); err != nil {
 		return worker.Config{}, err

@@ -11,6 +11,7 @@ import (
 	"github.com/plumb-forecast/plumb/internal/sharedtest"
 	"github.com/plumb-forecast/plumb/stream/history"
 	"github.com/plumb-forecast/plumb/stream/history/drift"
+	"github.com/plumb-forecast/plumb/worker"
 )
 
 // TestDriftScenarioAlarms runs the clean serf-pv-15min history (15-minute
@@ -22,9 +23,12 @@ import (
 // exponentially weighted chart: 2 coverage_off and 1 raw_drift in the two
 // and a half months scored; the window-based alarms they replaced raised
 // dozens), and each scenario's alarms before its change to those of the
-// clean history (the change alone moves them).
+// clean history (the change alone moves them), and the meter_flat alarm:
+// raised once within a day of the stuck meter and cleared once after it,
+// never on the clean history or the other scenarios (checkMeterFlat).
 //
-// Not held: that the change raises an alarm within a day. The forecaster's
+// Not held: that a change of output or weather (the step, the drift, the
+// weather bias) raises an alarm within a day. The forecaster's
 // online layers take up a step in output within days, so the coverage of
 // the raw model moves less than a cloudy week moves it, and no alarm of
 // coverage can tell the two apart on one site that soon. The test logs how
@@ -51,6 +55,7 @@ func TestDriftScenarioAlarms(t *testing.T) {
 	}
 	clean := run(h, "clean")
 	months := clean.To.Sub(clean.From).Hours() / (24 * 365.25 / 12)
+	checkMeterFlat(t, "clean", drift.Scenario{}, clean.Variants[0].AlarmLog)
 	for _, a := range clean.Variants[0].Alarms {
 		t.Logf("clean: %s raised %d times in %.1f months", a.Kind, a.Raised, months)
 		if float64(a.Raised) > months {
@@ -87,6 +92,7 @@ func TestDriftScenarioAlarms(t *testing.T) {
 			t.Errorf("%s: the alarms before the change differ from the clean history's", sc.Name)
 		}
 		t.Logf("%s (change at %s): first alarm after it %s; %d raised after it", sc.Name, sc.ChangeAt.Format("2006-01-02 15:04"), first, raises)
+		checkMeterFlat(t, sc.Name, sc, rep.Variants[0].AlarmLog)
 		logFirstDay(t, sc.Name, sc, rep, clean, 1)
 	}
 }
@@ -129,6 +135,7 @@ func TestDriftRecovery(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
+			checkMeterFlat(t, c.site+" clean", drift.Scenario{}, clean.Variants[0].AlarmLog)
 			ivs, nominal := []int{1, 2}, []float64{0.8, 0.9}
 			for k, iv := range ivs {
 				if got := clean.Variants[0].Intraday.All.Intervals[iv].Nominal; got != nominal[k] {
@@ -165,6 +172,9 @@ func TestDriftRecovery(t *testing.T) {
 					}
 					if v.Calibrator == "none" {
 						logFirstDay(t, c.site+" "+sc.Name, sc, rep, clean, vi)
+					}
+					if vi == 0 {
+						checkMeterFlat(t, c.site+" "+sc.Name, sc, v.AlarmLog)
 					}
 				}
 			}
@@ -234,4 +244,41 @@ func firstDay(rep, clean *Report, vi int, at time.Time) (shift, cleanShift, shar
 		return 0, 0, 0, false
 	}
 	return shift, cleanShift, float64(as) / float64(n), true
+}
+
+// checkMeterFlat holds the meter_flat alarms of a scenario's alarm log: a
+// stuck meter (drift.KindStuck) raises it once, within 24 hours of the
+// change, and clears it once, after the stuck stretch; the clean history
+// (the zero Scenario) and every other scenario never raise it.
+func checkMeterFlat(t *testing.T, name string, sc drift.Scenario, log []AlarmEvent) {
+	t.Helper()
+	var raised, cleared []time.Time
+	for _, e := range log {
+		if e.Kind != worker.KindMeterFlat {
+			continue
+		}
+		if e.State == conformal.StateRaised {
+			raised = append(raised, e.Time)
+		} else {
+			cleared = append(cleared, e.Time)
+		}
+	}
+	if sc.Kind != drift.KindStuck {
+		if len(raised) > 0 {
+			t.Errorf("%s: meter_flat raised %d times (first at %s) with no meter stuck", name, len(raised), raised[0])
+		}
+		return
+	}
+	if len(raised) != 1 || len(cleared) != 1 {
+		t.Errorf("%s: meter_flat raised at %v and cleared at %v, want once each", name, raised, cleared)
+		return
+	}
+	after := raised[0].Sub(sc.ChangeAt)
+	t.Logf("%s: meter_flat raised %s after the change, cleared %s after it", name, after, cleared[0].Sub(sc.ChangeAt))
+	if after < 0 || after > 24*time.Hour {
+		t.Errorf("%s: meter_flat raised %s after the change, want within 24 h", name, after)
+	}
+	if end := sc.From.Add(sc.Duration); cleared[0].Before(end) {
+		t.Errorf("%s: meter_flat cleared at %s, before the meter moves again at %s", name, cleared[0], end)
+	}
 }
