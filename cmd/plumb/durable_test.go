@@ -12,6 +12,7 @@ import (
 	"os"
 	"os/exec"
 	"path/filepath"
+	"slices"
 	"strconv"
 	"strings"
 	"sync"
@@ -344,6 +345,11 @@ func TestDurableFaults(t *testing.T) {
 		}
 		r.start("w1")
 		r.waitFor("run done", 5*time.Minute, r.done)
+		// The last kill can come after every snapshot is written (a
+		// site's last input before the kill point), and then the run is
+		// done at once: wait for the worker to hold its leases, so that
+		// SIGTERM does not come before it listens for it.
+		r.waitFor("w1 holds its leases", time.Minute, func() bool { return slices.Contains(r.owners(), "w1") })
 		r.stop("w1", syscall.SIGTERM)
 		t.Logf("killed with SIGKILL at stream sequences %s of %d, restarted each time", strings.Join(points, ", "), r.total)
 		same(t, r.finalState(), want)
